@@ -1,0 +1,360 @@
+#include "trainer/spec/config_tree.h"
+
+#include <fstream>
+#include <map>
+#include <memory>
+#include <sstream>
+
+#include "absl/status/status.h"
+#include "absl/strings/str_cat.h"
+#include "absl/strings/str_join.h"
+#include "absl/strings/str_split.h"
+#include "yaml-cpp/eventhandler.h"
+#include "yaml-cpp/yaml.h"
+
+namespace graft::spec {
+namespace {
+
+// Builds a ConfigNode tree from yaml-cpp's parse events.
+class TreeBuilder : public YAML::EventHandler {
+ public:
+  TreeBuilder(std::string source, int column_offset)
+      : source_(std::move(source)), column_offset_(column_offset) {}
+
+  void OnDocumentStart(const YAML::Mark&) override { ++documents_; }
+  void OnDocumentEnd() override {}
+
+  void OnNull(const YAML::Mark& mark, YAML::anchor_t anchor) override {
+    ConfigNode n;
+    n.kind = ConfigNode::Kind::kNull;
+    n.loc = Loc(mark);
+    Add(std::move(n), anchor);
+  }
+  void OnAlias(const YAML::Mark& mark, YAML::anchor_t anchor) override {
+    auto it = anchors_.find(anchor);
+    if (it == anchors_.end()) {
+      Fail(mark, "alias to an unknown anchor");
+      return;
+    }
+    ConfigNode copy = it->second;
+    copy.loc = Loc(mark);
+    Add(std::move(copy), 0);
+  }
+  void OnScalar(const YAML::Mark& mark, const std::string& tag, YAML::anchor_t anchor,
+                const std::string& value) override {
+    ConfigNode n;
+    n.kind = ConfigNode::Kind::kScalar;
+    n.scalar = value;
+    n.quoted = (tag == "!");
+    n.loc = Loc(mark);
+    if (!n.quoted && (value == "~" || value == "null" || value == "Null" || value == "NULL")) {
+      n.kind = ConfigNode::Kind::kNull;
+      n.scalar.clear();
+    }
+    Add(std::move(n), anchor);
+  }
+  void OnSequenceStart(const YAML::Mark& mark, const std::string&, YAML::anchor_t anchor,
+                       YAML::EmitterStyle::value) override {
+    ConfigNode n;
+    n.kind = ConfigNode::Kind::kSequence;
+    n.loc = Loc(mark);
+    stack_.push_back(Open{std::move(n), anchor, {}, false});
+  }
+  void OnSequenceEnd() override { Close(); }
+  void OnMapStart(const YAML::Mark& mark, const std::string&, YAML::anchor_t anchor,
+                  YAML::EmitterStyle::value) override {
+    ConfigNode n;
+    n.kind = ConfigNode::Kind::kMap;
+    n.loc = Loc(mark);
+    stack_.push_back(Open{std::move(n), anchor, {}, false});
+  }
+  void OnMapEnd() override { Close(); }
+
+  absl::Status status() const { return status_; }
+  int documents() const { return documents_; }
+  ConfigNode TakeRoot() { return std::move(root_); }
+  bool has_root() const { return has_root_; }
+
+ private:
+  struct Open {
+    ConfigNode node;
+    YAML::anchor_t anchor;
+    ConfigNode pending_key;
+    bool has_key;
+  };
+
+  Location Loc(const YAML::Mark& mark) const {
+    return Location{source_, mark.line + 1, mark.column + 1 + column_offset_};
+  }
+  void Fail(const YAML::Mark& mark, const std::string& message) {
+    if (status_.ok()) status_ = absl::InvalidArgumentError(absl::StrCat(Loc(mark).ToString(), ": ", message));
+  }
+  void FailAt(const Location& loc, const std::string& message) {
+    if (status_.ok()) status_ = absl::InvalidArgumentError(absl::StrCat(loc.ToString(), ": ", message));
+  }
+
+  void Add(ConfigNode n, YAML::anchor_t anchor) {
+    if (anchor != 0) anchors_[anchor] = n;
+    if (stack_.empty()) {
+      root_ = std::move(n);
+      has_root_ = true;
+      return;
+    }
+    Open& top = stack_.back();
+    if (top.node.kind == ConfigNode::Kind::kSequence) {
+      top.node.items.push_back(std::move(n));
+      return;
+    }
+    if (!top.has_key) {
+      if (n.kind != ConfigNode::Kind::kScalar) {
+        FailAt(n.loc, "map keys must be plain names");
+      }
+      top.pending_key = std::move(n);
+      top.has_key = true;
+      return;
+    }
+    // yaml-cpp's Node API keeps the first of two equal keys silently: refuse them here.
+    for (const auto& [k, v] : top.node.entries) {
+      if (k.scalar == top.pending_key.scalar) {
+        FailAt(top.pending_key.loc,
+               absl::StrCat("duplicate key '", k.scalar, "' (first written at line ", k.loc.line,
+                            "); remove one of them"));
+      }
+    }
+    top.node.entries.emplace_back(std::move(top.pending_key), std::move(n));
+    top.pending_key = ConfigNode();
+    top.has_key = false;
+  }
+  void Close() {
+    Open top = std::move(stack_.back());
+    stack_.pop_back();
+    Add(std::move(top.node), top.anchor);
+  }
+
+  std::string source_;
+  int column_offset_;
+  std::vector<Open> stack_;
+  std::map<YAML::anchor_t, ConfigNode> anchors_;
+  ConfigNode root_;
+  bool has_root_ = false;
+  int documents_ = 0;
+  absl::Status status_;
+};
+
+std::string QuoteIfNeeded(const ConfigNode& n) {
+  YAML::Emitter e;
+  e << n.scalar;
+  std::string plain = e.c_str();
+  if (n.quoted && (plain.empty() || plain[0] != '"')) return absl::StrCat("\"", n.scalar, "\"");
+  return plain;
+}
+
+void Emit(const ConfigNode& n, int indent, std::ostringstream& out, bool inline_start);
+
+void EmitFlow(const ConfigNode& n, std::ostringstream& out) {
+  switch (n.kind) {
+    case ConfigNode::Kind::kNull: out << "null"; break;
+    case ConfigNode::Kind::kScalar: out << QuoteIfNeeded(n); break;
+    case ConfigNode::Kind::kSequence: {
+      out << "[";
+      for (size_t i = 0; i < n.items.size(); ++i) {
+        if (i) out << ", ";
+        EmitFlow(n.items[i], out);
+      }
+      out << "]";
+      break;
+    }
+    case ConfigNode::Kind::kMap: {
+      out << "{";
+      for (size_t i = 0; i < n.entries.size(); ++i) {
+        if (i) out << ", ";
+        out << n.entries[i].first.scalar << ": ";
+        EmitFlow(n.entries[i].second, out);
+      }
+      out << "}";
+      break;
+    }
+  }
+}
+
+bool IsFlat(const ConfigNode& n) {
+  if (n.kind == ConfigNode::Kind::kSequence) {
+    for (const auto& i : n.items) {
+      if (i.kind == ConfigNode::Kind::kMap) return false;
+      if (i.kind == ConfigNode::Kind::kSequence && !IsFlat(i)) return false;
+    }
+    return true;
+  }
+  if (n.kind == ConfigNode::Kind::kMap) {
+    for (const auto& [k, v] : n.entries) {
+      if (v.kind == ConfigNode::Kind::kMap || v.kind == ConfigNode::Kind::kSequence) return false;
+    }
+    return n.entries.size() <= 4;
+  }
+  return true;
+}
+
+void Emit(const ConfigNode& n, int indent, std::ostringstream& out, bool) {
+  const std::string pad(indent, ' ');
+  for (const auto& [k, v] : n.entries) {
+    out << pad << k.scalar << ":";
+    if (v.kind == ConfigNode::Kind::kMap && !v.entries.empty() && !IsFlat(v)) {
+      out << "\n";
+      Emit(v, indent + 2, out, false);
+    } else if (v.kind == ConfigNode::Kind::kMap && !v.entries.empty() && indent == 0) {
+      out << "\n";
+      Emit(v, indent + 2, out, false);
+    } else {
+      out << " ";
+      EmitFlow(v, out);
+      out << "\n";
+    }
+  }
+}
+
+}  // namespace
+
+std::string Location::ToString() const { return absl::StrCat(source, ":", line, ":", column); }
+
+const ConfigNode* ConfigNode::Find(const std::string& key) const {
+  for (const auto& [k, v] : entries) {
+    if (k.scalar == key) return &v;
+  }
+  return nullptr;
+}
+
+ConfigNode* ConfigNode::FindMutable(const std::string& key) {
+  for (auto& [k, v] : entries) {
+    if (k.scalar == key) return &v;
+  }
+  return nullptr;
+}
+
+std::string ConfigNode::Describe() const {
+  switch (kind) {
+    case Kind::kNull: return "nothing";
+    case Kind::kScalar: return absl::StrCat("'", scalar, "'");
+    case Kind::kSequence: return "a list";
+    case Kind::kMap: return "a map";
+  }
+  return "?";
+}
+
+absl::StatusOr<ConfigNode> ParseYaml(const std::string& text, const std::string& source,
+                                     int column_offset) {
+  std::istringstream in(text);
+  TreeBuilder builder(source, column_offset);
+  try {
+    YAML::Parser parser(in);
+    while (parser.HandleNextDocument(builder)) {
+      if (!builder.status().ok()) return builder.status();
+      if (builder.documents() > 1) {
+        return absl::InvalidArgumentError(
+            absl::StrCat(source, ": holds more than one YAML document; one config per file"));
+      }
+    }
+  } catch (const YAML::Exception& e) {
+    return absl::InvalidArgumentError(absl::StrCat(source, ":", e.mark.line + 1, ":",
+                                                   e.mark.column + 1 + column_offset,
+                                                   ": YAML syntax: ", e.msg));
+  }
+  if (!builder.status().ok()) return builder.status();
+  if (!builder.has_root()) {
+    ConfigNode empty;
+    empty.loc = Location{source, 1, 1 + column_offset};
+    return empty;
+  }
+  return builder.TakeRoot();
+}
+
+absl::StatusOr<ConfigNode> ParseYamlFile(const std::string& path) {
+  std::ifstream in(path, std::ios::binary);
+  if (!in.good()) return absl::NotFoundError(absl::StrCat(path, ": cannot open the file"));
+  std::stringstream ss;
+  ss << in.rdbuf();
+  return ParseYaml(ss.str(), path);
+}
+
+absl::Status ApplyOverride(ConfigNode& root, const std::string& assignment, int n) {
+  const std::string source = absl::StrCat("--set #", n);
+  const size_t eq = assignment.find('=');
+  if (eq == std::string::npos || eq == 0) {
+    return absl::InvalidArgumentError(absl::StrCat(
+        source, ":1:1: expected key.path=value, got '", assignment, "'"));
+  }
+  const std::string path = assignment.substr(0, eq);
+  auto value = ParseYaml(assignment.substr(eq + 1), source, static_cast<int>(eq + 1));
+  if (!value.ok()) return value.status();
+  if (root.kind == ConfigNode::Kind::kNull) {
+    root.kind = ConfigNode::Kind::kMap;
+  }
+  ConfigNode* node = &root;
+  int column = 1;
+  std::vector<std::string> parts = absl::StrSplit(path, '.');
+  for (size_t i = 0; i < parts.size(); ++i) {
+    const std::string& part = parts[i];
+    const Location loc{source, 1, column};
+    if (part.empty()) {
+      return absl::InvalidArgumentError(absl::StrCat(loc.ToString(), ": empty key in '", path, "'"));
+    }
+    const bool last = i + 1 == parts.size();
+    ConfigNode* next = nullptr;
+    if (node->kind == ConfigNode::Kind::kSequence) {
+      char* end = nullptr;
+      long idx = std::strtol(part.c_str(), &end, 10);
+      if (*end != '\0' || idx < 0 || static_cast<size_t>(idx) >= node->items.size()) {
+        return absl::InvalidArgumentError(absl::StrCat(
+            loc.ToString(), ": '", part, "' is not an index of the list at '",
+            absl::StrJoin(std::vector<std::string>(parts.begin(), parts.begin() + i), "."),
+            "' (it has ", node->items.size(), " items)"));
+      }
+      next = &node->items[idx];
+    } else {
+      if (node->kind != ConfigNode::Kind::kMap) {
+        if (node->kind == ConfigNode::Kind::kNull) {
+          node->kind = ConfigNode::Kind::kMap;
+        } else {
+          return absl::InvalidArgumentError(absl::StrCat(
+              loc.ToString(), ": cannot set '", part, "' inside ",
+              absl::StrJoin(std::vector<std::string>(parts.begin(), parts.begin() + i), "."),
+              ", which is ", node->Describe(), ", not a map"));
+        }
+      }
+      next = node->FindMutable(part);
+      if (next == nullptr) {
+        ConfigNode key;
+        key.kind = ConfigNode::Kind::kScalar;
+        key.scalar = part;
+        key.loc = loc;
+        ConfigNode empty;
+        empty.loc = loc;
+        node->entries.emplace_back(std::move(key), std::move(empty));
+        next = &node->entries.back().second;
+      } else {
+        // Errors about this key now point at the override.
+        for (auto& [k, v] : node->entries) {
+          if (&v == next) k.loc = loc;
+        }
+      }
+    }
+    if (last) {
+      *next = std::move(*value);
+    }
+    node = next;
+    column += static_cast<int>(part.size()) + 1;
+  }
+  return absl::OkStatus();
+}
+
+std::string ToYaml(const ConfigNode& node) {
+  std::ostringstream out;
+  if (node.kind == ConfigNode::Kind::kMap) {
+    Emit(node, 0, out, false);
+  } else {
+    EmitFlow(node, out);
+    out << "\n";
+  }
+  return out.str();
+}
+
+}  // namespace graft::spec

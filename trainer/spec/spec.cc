@@ -1,0 +1,1027 @@
+#include "trainer/spec/spec.h"
+
+#include <algorithm>
+#include <cerrno>
+#include <cmath>
+#include <cstdio>
+#include <cstdlib>
+#include <filesystem>
+#include <map>
+#include <optional>
+#include <set>
+#include <sstream>
+
+#include "absl/status/status.h"
+#include "absl/strings/str_cat.h"
+#include "absl/strings/str_join.h"
+#include "absl/strings/str_split.h"
+#include "trainer/spec/suggest.h"
+
+namespace graft::spec {
+namespace {
+
+using causal::DomainDecl;
+using causal::DomainKind;
+using causal::Role;
+using causal::VariableDecl;
+
+// Shortest decimal text that reads back as the same double.
+std::string FormatDouble(double x) {
+  char buf[64];
+  for (int p = 1; p <= 17; ++p) {
+    std::snprintf(buf, sizeof(buf), "%.*g", p, x);
+    if (std::strtod(buf, nullptr) == x) break;
+  }
+  return buf;
+}
+
+// Parse-time positions of things validated after the model exists.
+struct SiteLocations {
+  Location layer, units;
+};
+struct Positions {
+  std::vector<Location> var_name;         // per declaration
+  std::vector<Location> var_expr;         // per declaration: first character of the expression
+  std::vector<std::vector<Location>> var_domain_items;  // per declaration, per symbol
+  std::vector<Location> var_domain;       // per declaration
+  std::vector<SiteLocations> sites;       // per alignment entry
+  std::vector<std::vector<Location>> set_items;  // per intervention set, per name
+  std::vector<Location> sets;             // per intervention set
+  Location interventions, held_out, hidden, root;
+};
+
+// Reads typed values out of a ConfigNode tree, collecting every error with its location.
+class Reader {
+ public:
+  void Error(const Location& loc, const std::string& message) {
+    errors_.push_back(absl::StrCat(loc.ToString(), ": ", message));
+  }
+  bool ok() const { return errors_.empty(); }
+  const std::vector<std::string>& errors() const { return errors_; }
+
+  // Reports keys of `map` not in `allowed`, suggesting the nearest one.
+  void CheckKeys(const ConfigNode& map, const std::string& path, const std::vector<std::string>& allowed) {
+    for (const auto& [k, v] : map.entries) {
+      if (std::find(allowed.begin(), allowed.end(), k.scalar) != allowed.end()) continue;
+      std::string where = path.empty() ? "at the top level" : absl::StrCat("in '", path, "'");
+      std::string msg = absl::StrCat("unknown key '", k.scalar, "' ", where);
+      std::string near = Nearest(k.scalar, allowed);
+      if (!near.empty()) {
+        absl::StrAppend(&msg, "; did you mean '", near, "'?");
+      } else {
+        absl::StrAppend(&msg, "; valid keys: ", absl::StrJoin(allowed, ", "));
+      }
+      Error(k.loc, msg);
+    }
+  }
+
+  // A map, or an error; null counts as absent (returns nullptr without error).
+  const ConfigNode* Map(const ConfigNode* node, const std::string& path) {
+    if (node == nullptr || node->IsNull()) return nullptr;
+    if (!node->IsMap()) {
+      Error(node->loc, absl::StrCat(path, ": expected a map of keys, got ", node->Describe()));
+      return nullptr;
+    }
+    return node;
+  }
+
+  std::optional<int64_t> Int(const ConfigNode& node, const std::string& path, int64_t lo, int64_t hi) {
+    std::string expected = hi >= (int64_t{1} << 30) ? absl::StrCat("a whole number >= ", lo)
+                                           : absl::StrCat("a whole number in [", lo, ", ", hi, "]");
+    if (!node.IsScalar() || node.quoted) {
+      Error(node.loc, absl::StrCat(path, ": expected ", expected, ", got ", node.Describe()));
+      return std::nullopt;
+    }
+    errno = 0;
+    char* end = nullptr;
+    long long v = std::strtoll(node.scalar.c_str(), &end, 10);
+    if (node.scalar.empty() || *end != '\0' || errno == ERANGE) {
+      Error(node.loc, absl::StrCat(path, ": expected ", expected, ", got ", node.Describe()));
+      return std::nullopt;
+    }
+    if (v < lo || v > hi) {
+      Error(node.loc, absl::StrCat(path, ": expected ", expected, ", got ", v));
+      return std::nullopt;
+    }
+    return v;
+  }
+
+  std::optional<double> Number(const ConfigNode& node, const std::string& path, double lo, double hi,
+                               bool hi_open = false, bool lo_open = false) {
+    std::string expected = absl::StrCat("a number in ", lo_open ? "(" : "[", FormatDouble(lo), ", ",
+                                        std::isinf(hi) ? "inf" : FormatDouble(hi), hi_open ? ")" : "]");
+    if (!node.IsScalar() || node.quoted) {
+      Error(node.loc, absl::StrCat(path, ": expected ", expected, ", got ", node.Describe()));
+      return std::nullopt;
+    }
+    char* end = nullptr;
+    double v = std::strtod(node.scalar.c_str(), &end);
+    if (node.scalar.empty() || *end != '\0' || !std::isfinite(v)) {
+      Error(node.loc, absl::StrCat(path, ": expected ", expected, ", got ", node.Describe()));
+      return std::nullopt;
+    }
+    if (v < lo || v > hi || (hi_open && v == hi) || (lo_open && v == lo)) {
+      Error(node.loc, absl::StrCat(path, ": expected ", expected, ", got ", node.scalar));
+      return std::nullopt;
+    }
+    return v;
+  }
+
+  std::optional<bool> Bool(const ConfigNode& node, const std::string& path) {
+    if (node.IsScalar() && !node.quoted) {
+      if (node.scalar == "true") return true;
+      if (node.scalar == "false") return false;
+    }
+    Error(node.loc, absl::StrCat(path, ": expected true or false, got ", node.Describe()));
+    return std::nullopt;
+  }
+
+  std::optional<std::string> String(const ConfigNode& node, const std::string& path) {
+    if (!node.IsScalar()) {
+      Error(node.loc, absl::StrCat(path, ": expected text, got ", node.Describe()));
+      return std::nullopt;
+    }
+    return node.scalar;
+  }
+
+  // One of `allowed` (index), or an error with a suggestion.
+  std::optional<int> Choice(const ConfigNode& node, const std::string& path,
+                            const std::vector<std::string>& allowed) {
+    if (node.IsScalar()) {
+      for (size_t i = 0; i < allowed.size(); ++i) {
+        if (node.scalar == allowed[i]) return static_cast<int>(i);
+      }
+    }
+    std::string msg = absl::StrCat(path, ": expected one of ", absl::StrJoin(allowed, " | "), ", got ",
+                                   node.Describe());
+    if (node.IsScalar()) {
+      std::string near = Nearest(node.scalar, allowed);
+      if (!near.empty()) absl::StrAppend(&msg, "; did you mean '", near, "'?");
+    }
+    Error(node.loc, msg);
+    return std::nullopt;
+  }
+
+ private:
+  std::vector<std::string> errors_;
+};
+
+// The first character of an expression written as `node`.
+Location ExprStart(const ConfigNode& node) { return node.quoted ? node.loc.Advance(1) : node.loc; }
+
+std::optional<DomainDecl> ReadDomain(Reader& r, const ConfigNode& node, const std::string& path,
+                                     std::vector<Location>* item_locs, bool classes = false) {
+  DomainDecl d;
+  if (node.IsSequence()) {
+    d.kind = DomainKind::kSymbols;
+    for (const auto& item : node.items) {
+      if (!item.IsScalar() || item.scalar.empty()) {
+        r.Error(item.loc, absl::StrCat(path, ": each value must be a name, got ", item.Describe()));
+        return std::nullopt;
+      }
+      if (!item.scalar.empty() && (std::isdigit(static_cast<unsigned char>(item.scalar[0])) || item.scalar[0] == '-')) {
+        r.Error(item.loc, absl::StrCat(path, ": value ", item.Describe(), " is a number; list names",
+                                       classes ? "" : ", or write numbers as {range: [lo, hi]}"));
+        return std::nullopt;
+      }
+      d.symbols.push_back(item.scalar);
+      if (item_locs) item_locs->push_back(item.loc);
+    }
+    if (d.symbols.empty()) {
+      r.Error(node.loc, absl::StrCat(path, ": the list of values is empty"));
+      return std::nullopt;
+    }
+    return d;
+  }
+  if (classes) {
+    r.Error(node.loc, absl::StrCat(path, ": expected a list of class names, got ", node.Describe()));
+    return std::nullopt;
+  }
+  if (node.IsScalar() && !node.quoted && node.scalar == "bool") {
+    d.kind = DomainKind::kBool;
+    return d;
+  }
+  if (node.IsMap()) {
+    r.CheckKeys(node, path, {"range"});
+    const ConfigNode* range = node.Find("range");
+    if (range == nullptr) {
+      if (node.entries.empty()) r.Error(node.loc, absl::StrCat(path, ": expected {range: [lo, hi]}"));
+      return std::nullopt;
+    }
+    if (!range->IsSequence() || range->items.size() != 2) {
+      r.Error(range->loc, absl::StrCat(path, ".range: expected [lo, hi] (two whole numbers), got ",
+                                       range->Describe()));
+      return std::nullopt;
+    }
+    auto lo = r.Int(range->items[0], path + ".range[0]", -1000000000, 1000000000);
+    auto hi = r.Int(range->items[1], path + ".range[1]", -1000000000, 1000000000);
+    if (!lo || !hi) return std::nullopt;
+    if (*hi < *lo) {
+      r.Error(range->loc, absl::StrCat(path, ".range: lo ", *lo, " is above hi ", *hi));
+      return std::nullopt;
+    }
+    d.kind = DomainKind::kRange;
+    d.lo = *lo;
+    d.hi = *hi;
+    return d;
+  }
+  r.Error(node.loc, absl::StrCat(path, ": expected a list of values, {range: [lo, hi]} or bool, got ",
+                                 node.Describe()));
+  return std::nullopt;
+}
+
+// "0-15", "7", or a list of whole numbers.
+std::optional<std::vector<int>> ReadUnits(Reader& r, const ConfigNode& node, const std::string& path) {
+  std::vector<int> units;
+  const std::string expected = "an inclusive range such as 0-15, or a list of unit indices";
+  if (node.IsScalar() && !node.quoted) {
+    std::vector<std::string> parts = absl::StrSplit(node.scalar, '-');
+    auto whole = [](const std::string& s, int* out) {
+      if (s.empty() || s.size() > 9) return false;
+      for (char c : s) {
+        if (!std::isdigit(static_cast<unsigned char>(c))) return false;
+      }
+      *out = std::atoi(s.c_str());
+      return true;
+    };
+    int a = 0, b = 0;
+    if (parts.size() == 1 && whole(parts[0], &a)) {
+      units.push_back(a);
+    } else if (parts.size() == 2 && whole(parts[0], &a) && whole(parts[1], &b)) {
+      if (b < a) {
+        r.Error(node.loc, absl::StrCat(path, ": range ", node.scalar, " is empty; write lo-hi with lo <= hi"));
+        return std::nullopt;
+      }
+      for (int u = a; u <= b; ++u) units.push_back(u);
+    } else {
+      r.Error(node.loc, absl::StrCat(path, ": expected ", expected, ", got ", node.Describe()));
+      return std::nullopt;
+    }
+  } else if (node.IsSequence()) {
+    for (const auto& item : node.items) {
+      auto u = r.Int(item, path + "[]", 0, 1 << 20);
+      if (!u) return std::nullopt;
+      units.push_back(static_cast<int>(*u));
+    }
+    if (units.empty()) {
+      r.Error(node.loc, absl::StrCat(path, ": the list of units is empty"));
+      return std::nullopt;
+    }
+  } else {
+    r.Error(node.loc, absl::StrCat(path, ": expected ", expected, ", got ", node.Describe()));
+    return std::nullopt;
+  }
+  std::vector<int> sorted = units;
+  std::sort(sorted.begin(), sorted.end());
+  if (std::adjacent_find(sorted.begin(), sorted.end()) != sorted.end()) {
+    r.Error(node.loc, absl::StrCat(path, ": a unit is listed twice"));
+    return std::nullopt;
+  }
+  return sorted;
+}
+
+void ReadAlgorithm(Reader& r, const ConfigNode& algo, JobSpec& spec, Positions& pos) {
+  r.CheckKeys(algo, "algorithm", {"inputs", "mechanisms", "output"});
+  auto add = [&](VariableDecl d, const Location& name_loc, const Location& expr_loc,
+                 const Location& dom_loc, std::vector<Location> items) {
+    spec.variables.push_back(std::move(d));
+    pos.var_name.push_back(name_loc);
+    pos.var_expr.push_back(expr_loc);
+    pos.var_domain.push_back(dom_loc);
+    pos.var_domain_items.push_back(std::move(items));
+  };
+  const ConfigNode* inputs = r.Map(algo.Find("inputs"), "algorithm.inputs");
+  if (inputs == nullptr) {
+    if (algo.Find("inputs") == nullptr) r.Error(algo.loc, "algorithm: needs 'inputs' (a map from input name to domain)");
+  } else {
+    for (const auto& [k, v] : inputs->entries) {
+      VariableDecl d;
+      d.name = k.scalar;
+      d.role = Role::kInput;
+      std::vector<Location> items;
+      d.domain = ReadDomain(r, v, absl::StrCat("algorithm.inputs.", k.scalar), &items);
+      if (!d.domain) continue;
+      add(std::move(d), k.loc, v.loc, v.loc, std::move(items));
+    }
+    if (inputs->entries.empty()) r.Error(inputs->loc, "algorithm.inputs: declare at least one input");
+  }
+  const ConfigNode* mechs = r.Map(algo.Find("mechanisms"), "algorithm.mechanisms");
+  if (mechs != nullptr) {
+    for (const auto& [k, v] : mechs->entries) {
+      const std::string path = absl::StrCat("algorithm.mechanisms.", k.scalar);
+      VariableDecl d;
+      d.name = k.scalar;
+      d.role = Role::kMechanism;
+      std::vector<Location> items;
+      Location expr_loc = v.loc, dom_loc = v.loc;
+      if (v.IsScalar()) {
+        d.expr = v.scalar;
+        expr_loc = ExprStart(v);
+      } else if (v.IsMap()) {
+        r.CheckKeys(v, path, {"expr", "domain"});
+        const ConfigNode* e = v.Find("expr");
+        if (e == nullptr || !e->IsScalar()) {
+          r.Error(e ? e->loc : v.loc, absl::StrCat(path, ".expr: expected the mechanism's expression as text"));
+          continue;
+        }
+        d.expr = e->scalar;
+        expr_loc = ExprStart(*e);
+        if (const ConfigNode* dom = v.Find("domain")) {
+          d.domain = ReadDomain(r, *dom, path + ".domain", &items);
+          dom_loc = dom->loc;
+          if (!d.domain) continue;
+        }
+      } else {
+        r.Error(v.loc, absl::StrCat(path, ": expected an expression, or {expr: ..., domain: ...}, got ",
+                                    v.Describe()));
+        continue;
+      }
+      add(std::move(d), k.loc, expr_loc, dom_loc, std::move(items));
+    }
+  }
+  const ConfigNode* out = r.Map(algo.Find("output"), "algorithm.output");
+  if (out == nullptr) {
+    if (algo.Find("output") == nullptr) r.Error(algo.loc, "algorithm: needs 'output' (name: {expr: ..., classes: [...]})");
+    return;
+  }
+  if (out->entries.size() != 1) {
+    r.Error(out->loc, absl::StrCat("algorithm.output: expected exactly one output variable, got ",
+                                   out->entries.size()));
+    return;
+  }
+  const auto& [k, v] = out->entries[0];
+  const std::string path = absl::StrCat("algorithm.output.", k.scalar);
+  VariableDecl d;
+  d.name = k.scalar;
+  d.role = Role::kOutput;
+  std::vector<Location> items;
+  Location expr_loc = v.loc, dom_loc = v.loc;
+  if (v.IsScalar()) {
+    d.expr = v.scalar;
+    expr_loc = ExprStart(v);
+  } else if (v.IsMap()) {
+    r.CheckKeys(v, path, {"expr", "classes"});
+    const ConfigNode* e = v.Find("expr");
+    if (e == nullptr || !e->IsScalar()) {
+      r.Error(e ? e->loc : v.loc, absl::StrCat(path, ".expr: expected the output's expression as text"));
+      return;
+    }
+    d.expr = e->scalar;
+    expr_loc = ExprStart(*e);
+    if (const ConfigNode* cls = v.Find("classes")) {
+      d.domain = ReadDomain(r, *cls, path + ".classes", &items, /*classes=*/true);
+      dom_loc = cls->loc;
+      if (!d.domain) return;
+    }
+  } else {
+    r.Error(v.loc, absl::StrCat(path, ": expected an expression, or {expr: ..., classes: [...]}"));
+    return;
+  }
+  add(std::move(d), k.loc, expr_loc, dom_loc, std::move(items));
+}
+
+void ReadNetwork(Reader& r, const ConfigNode* net, JobSpec& spec, Positions& pos) {
+  pos.hidden = pos.root;
+  if (net == nullptr) return;
+  pos.hidden = net->loc;
+  r.CheckKeys(*net, "network", {"type", "embedding", "hidden", "activation"});
+  if (const ConfigNode* t = net->Find("type")) {
+    if (auto c = r.Choice(*t, "network.type", {"mlp"})) spec.network.type = "mlp";
+  }
+  if (const ConfigNode* e = r.Map(net->Find("embedding"), "network.embedding")) {
+    r.CheckKeys(*e, "network.embedding", {"dim", "init"});
+    if (const ConfigNode* d = e->Find("dim")) {
+      if (auto v = r.Int(*d, "network.embedding.dim", 1, 4096)) spec.network.embedding_dim = static_cast<int>(*v);
+    }
+    if (const ConfigNode* i = e->Find("init")) {
+      if (auto c = r.Choice(*i, "network.embedding.init", {"learned", "fixed_random"})) {
+        spec.network.embedding_init = static_cast<EmbeddingInit>(*c);
+      }
+    }
+  }
+  if (const ConfigNode* h = net->Find("hidden")) {
+    pos.hidden = h->loc;
+    if (!h->IsSequence() || h->items.empty()) {
+      r.Error(h->loc, absl::StrCat("network.hidden: expected a non-empty list of layer widths, got ", h->Describe()));
+    } else {
+      spec.network.hidden.clear();
+      for (const auto& item : h->items) {
+        if (auto w = r.Int(item, "network.hidden[]", 1, 65536)) spec.network.hidden.push_back(static_cast<int>(*w));
+      }
+    }
+  }
+  if (const ConfigNode* a = net->Find("activation")) {
+    if (auto c = r.Choice(*a, "network.activation", {"relu", "gelu", "tanh"})) {
+      spec.network.activation = static_cast<Activation>(*c);
+    }
+  }
+}
+
+void ReadAlignment(Reader& r, const ConfigNode* al, JobSpec& spec, Positions& pos) {
+  if (al == nullptr) return;
+  for (const auto& [k, v] : al->entries) {
+    const std::string path = absl::StrCat("alignment.", k.scalar);
+    if (!v.IsMap()) {
+      r.Error(v.loc, absl::StrCat(path, ": expected {layer: K, units: A-B}, got ", v.Describe()));
+      continue;
+    }
+    r.CheckKeys(v, path, {"layer", "units"});
+    const ConfigNode* layer = v.Find("layer");
+    const ConfigNode* units = v.Find("units");
+    if (layer == nullptr || units == nullptr) {
+      r.Error(v.loc, absl::StrCat(path, ": needs both 'layer' and 'units'"));
+      continue;
+    }
+    auto l = r.Int(*layer, path + ".layer", 0, 1 << 20);
+    auto u = ReadUnits(r, *units, path + ".units");
+    if (!l || !u) continue;
+    SiteSpec s;
+    s.variable = k.scalar;
+    s.layer = static_cast<int>(*l);
+    s.units = std::move(*u);
+    s.loc = k.loc;
+    spec.alignment.push_back(std::move(s));
+    pos.sites.push_back(SiteLocations{layer->loc, units->loc});
+  }
+}
+
+void ReadTraining(Reader& r, const ConfigNode* tr, JobSpec& spec, Positions& pos) {
+  pos.interventions = pos.root;
+  if (tr == nullptr) return;
+  pos.interventions = tr->loc;
+  TrainingSpec& t = spec.training;
+  r.CheckKeys(*tr, "training", {"steps", "batch_size", "optimizer", "loss_weights", "interventions", "sources",
+                                "source_gradients", "threads", "checkpoint_every"});
+  if (const ConfigNode* n = tr->Find("steps")) {
+    if (auto v = r.Int(*n, "training.steps", 1, int64_t{1} << 40)) t.steps = *v;
+  }
+  if (const ConfigNode* n = tr->Find("batch_size")) {
+    if (auto v = r.Int(*n, "training.batch_size", 1, 65536)) t.batch_size = static_cast<int>(*v);
+  }
+  if (const ConfigNode* o = r.Map(tr->Find("optimizer"), "training.optimizer")) {
+    r.CheckKeys(*o, "training.optimizer", {"type", "lr", "weight_decay", "momentum"});
+    if (const ConfigNode* n = o->Find("type")) {
+      if (auto c = r.Choice(*n, "training.optimizer.type", {"adam", "sgd"})) t.optimizer.type = static_cast<OptimizerType>(*c);
+    }
+    if (const ConfigNode* n = o->Find("lr")) {
+      if (auto v = r.Number(*n, "training.optimizer.lr", 0, 10, false, /*lo_open=*/true)) t.optimizer.lr = *v;
+    }
+    if (const ConfigNode* n = o->Find("weight_decay")) {
+      if (auto v = r.Number(*n, "training.optimizer.weight_decay", 0, 1)) t.optimizer.weight_decay = *v;
+    }
+    if (const ConfigNode* n = o->Find("momentum")) {
+      if (auto v = r.Number(*n, "training.optimizer.momentum", 0, 1, /*hi_open=*/true)) t.optimizer.momentum = *v;
+    }
+  }
+  if (const ConfigNode* w = r.Map(tr->Find("loss_weights"), "training.loss_weights")) {
+    r.CheckKeys(*w, "training.loss_weights", {"task", "interchange"});
+    if (const ConfigNode* n = w->Find("task")) {
+      if (auto v = r.Number(*n, "training.loss_weights.task", 0, 1e6)) t.task_weight = *v;
+    }
+    if (const ConfigNode* n = w->Find("interchange")) {
+      if (auto v = r.Number(*n, "training.loss_weights.interchange", 0, 1e6)) t.interchange_weight = *v;
+    }
+    if (t.task_weight == 0 && t.interchange_weight == 0) {
+      r.Error(w->loc, "training.loss_weights: task and interchange are both 0; nothing would be trained");
+    }
+  }
+  if (const ConfigNode* iv = tr->Find("interventions")) {
+    pos.interventions = iv->loc;
+    if (!iv->IsSequence() || iv->items.empty()) {
+      r.Error(iv->loc, absl::StrCat("training.interventions: expected a list of variable lists such as "
+                                    "[[local], [careful]], got ", iv->Describe()));
+    } else {
+      for (const auto& set : iv->items) {
+        std::vector<std::string> names;
+        std::vector<Location> locs;
+        if (set.IsScalar()) {  // a single name is a set of one
+          names.push_back(set.scalar);
+          locs.push_back(set.loc);
+        } else if (set.IsSequence() && !set.items.empty()) {
+          for (const auto& item : set.items) {
+            if (!item.IsScalar()) {
+              r.Error(item.loc, "training.interventions: each entry must be a variable name");
+              continue;
+            }
+            names.push_back(item.scalar);
+            locs.push_back(item.loc);
+          }
+        } else {
+          r.Error(set.loc, absl::StrCat("training.interventions: each set is a non-empty list of aligned "
+                                        "variables, got ", set.Describe()));
+          continue;
+        }
+        t.interventions.push_back(std::move(names));
+        pos.set_items.push_back(std::move(locs));
+        pos.sets.push_back(set.loc);
+      }
+    }
+  }
+  if (const ConfigNode* n = tr->Find("sources")) {
+    if (auto c = r.Choice(*n, "training.sources", {"in_batch", "independent"})) t.sources = static_cast<SourceMode>(*c);
+  }
+  if (const ConfigNode* n = tr->Find("source_gradients")) {
+    if (auto v = r.Bool(*n, "training.source_gradients")) t.source_gradients = *v;
+  }
+  if (const ConfigNode* n = tr->Find("threads")) {
+    if (auto v = r.Int(*n, "training.threads", 1, 256)) t.threads = static_cast<int>(*v);
+  }
+  if (const ConfigNode* n = tr->Find("checkpoint_every")) {
+    if (auto v = r.Int(*n, "training.checkpoint_every", 1, int64_t{1} << 40)) t.checkpoint_every = *v;
+  }
+}
+
+void ReadEvaluation(Reader& r, const ConfigNode* ev, JobSpec& spec, Positions& pos) {
+  pos.held_out = pos.root;
+  if (ev == nullptr) return;
+  pos.held_out = ev->loc;
+  r.CheckKeys(*ev, "evaluation", {"every", "held_out", "triples"});
+  if (const ConfigNode* n = ev->Find("every")) {
+    if (auto v = r.Int(*n, "evaluation.every", 1, int64_t{1} << 40)) spec.evaluation.every = *v;
+  }
+  if (const ConfigNode* n = ev->Find("held_out")) {
+    pos.held_out = n->loc;
+    if (auto v = r.Number(*n, "evaluation.held_out", 0, 1, /*hi_open=*/true)) spec.evaluation.held_out = *v;
+  }
+  if (const ConfigNode* n = ev->Find("triples")) {
+    if (auto v = r.Int(*n, "evaluation.triples", 1, int64_t{1} << 26)) spec.evaluation.triples = *v;
+  }
+}
+
+std::string Combine(const std::vector<std::string>& errors) { return absl::StrJoin(errors, "\n"); }
+
+// Checks everything that needs the compiled model; fills the resolved parts of `job`.
+void Validate(Reader& r, const Positions& pos, ResolvedJob& job) {
+  const JobSpec& spec = job.spec;
+  const causal::CausalModel& model = *job.model;
+  const int layers = static_cast<int>(spec.network.hidden.size());
+  job.site_of_variable.assign(model.num_variables(), -1);
+  std::vector<std::string> var_names;
+  for (int i = 0; i < model.num_variables(); ++i) var_names.push_back(model.variable(i).name);
+
+  std::vector<std::string> aligned_names;
+  for (size_t s = 0; s < spec.alignment.size(); ++s) {
+    const SiteSpec& site = spec.alignment[s];
+    const std::string path = absl::StrCat("alignment.", site.variable);
+    const int v = model.Find(site.variable);
+    if (v < 0) {
+      std::string msg = absl::StrCat("alignment: '", site.variable, "' is not a variable of the algorithm");
+      std::string near = Nearest(site.variable, var_names);
+      if (!near.empty()) absl::StrAppend(&msg, "; did you mean '", near, "'?");
+      r.Error(site.loc, msg);
+      continue;
+    }
+    if (model.variable(v).role == Role::kInput) {
+      r.Error(site.loc, absl::StrCat(path, ": '", site.variable,
+                                     "' is an input; only intermediate variables (mechanisms) can be aligned"));
+      continue;
+    }
+    if (model.variable(v).role == Role::kOutput) {
+      r.Error(site.loc, absl::StrCat(path, ": '", site.variable,
+                                     "' is the output; only intermediate variables (mechanisms) can be aligned"));
+      continue;
+    }
+    if (site.layer >= layers) {
+      r.Error(pos.sites[s].layer, absl::StrCat(path, ".layer: layer ", site.layer, " does not exist; network.hidden has ",
+                                               layers, " layers, numbered 0-", layers - 1));
+      continue;
+    }
+    const int width = spec.network.hidden[site.layer];
+    if (site.units.back() >= width) {
+      r.Error(pos.sites[s].units, absl::StrCat(path, ".units: unit ", site.units.back(), " is outside layer ", site.layer,
+                                               ", which has ", width, " units (0-", width - 1, ")"));
+      continue;
+    }
+    bool overlap = false;
+    for (size_t o = 0; o < s; ++o) {
+      const SiteSpec& other = spec.alignment[o];
+      const int ov = model.Find(other.variable);
+      if (other.layer != site.layer || ov < 0 || job.site_of_variable[ov] != static_cast<int>(o)) continue;
+      std::vector<int> common;
+      std::set_intersection(site.units.begin(), site.units.end(), other.units.begin(), other.units.end(),
+                            std::back_inserter(common));
+      if (!common.empty()) {
+        r.Error(pos.sites[s].units, absl::StrCat(path, ".units: unit ", common.front(), " of layer ", site.layer,
+                                                 " is also aligned to '", other.variable,
+                                                 "'; each unit can stand for one variable only"));
+        overlap = true;
+        break;
+      }
+    }
+    if (overlap) continue;
+    if (job.site_of_variable[v] >= 0) {
+      r.Error(site.loc, absl::StrCat(path, ": aligned twice"));
+      continue;
+    }
+    job.site_of_variable[v] = static_cast<int>(s);
+    aligned_names.push_back(site.variable);
+  }
+  if (spec.alignment.empty() && spec.training.interchange_weight > 0) {
+    r.Error(pos.root, "alignment: no variable is aligned, so there is nothing to intervene on; align at least "
+                      "one mechanism, or set training.loss_weights.interchange: 0 for standard training");
+  }
+  if (!r.ok()) return;
+
+  // Intervention sets.
+  std::vector<std::vector<int>> sets;
+  std::vector<size_t> set_pos;
+  if (spec.training.interventions.empty()) {
+    std::vector<int> aligned;
+    for (int v = 0; v < model.num_variables(); ++v) {
+      if (job.site_of_variable[v] >= 0) aligned.push_back(v);
+    }
+    const int k = static_cast<int>(aligned.size());
+    if (k > 0 && k <= 3) {
+      for (int mask = 1; mask < (1 << k); ++mask) {
+        std::vector<int> s;
+        for (int b = 0; b < k; ++b) {
+          if (mask & (1 << b)) s.push_back(aligned[b]);
+        }
+        sets.push_back(s);
+      }
+      std::stable_sort(sets.begin(), sets.end(), [](const auto& a, const auto& b) { return a.size() < b.size(); });
+    } else if (k > 3) {
+      for (int v : aligned) sets.push_back({v});
+      sets.push_back(aligned);
+    }
+    set_pos.assign(sets.size(), SIZE_MAX);
+  } else {
+    for (size_t i = 0; i < spec.training.interventions.size(); ++i) {
+      std::vector<int> s;
+      bool bad = false;
+      for (size_t j = 0; j < spec.training.interventions[i].size(); ++j) {
+        const std::string& name = spec.training.interventions[i][j];
+        const int v = model.Find(name);
+        if (v < 0 || job.site_of_variable[v] < 0) {
+          std::string msg = absl::StrCat("training.interventions: '", name, "' is not an aligned variable");
+          std::string near = Nearest(name, aligned_names);
+          if (!near.empty()) absl::StrAppend(&msg, "; did you mean '", near, "'?");
+          else if (!aligned_names.empty()) absl::StrAppend(&msg, "; aligned: ", absl::StrJoin(aligned_names, ", "));
+          if (v >= 0) absl::StrAppend(&msg, " (add it to 'alignment' to intervene on it)");
+          r.Error(pos.set_items[i][j], msg);
+          bad = true;
+          continue;
+        }
+        if (std::find(s.begin(), s.end(), v) != s.end()) {
+          r.Error(pos.set_items[i][j], absl::StrCat("training.interventions: '", name, "' is listed twice in one set"));
+          bad = true;
+          continue;
+        }
+        s.push_back(v);
+      }
+      if (bad) continue;
+      std::sort(s.begin(), s.end());
+      if (std::find(sets.begin(), sets.end(), s) != sets.end()) {
+        r.Error(pos.sets[i], "training.interventions: this set is listed twice");
+        continue;
+      }
+      sets.push_back(s);
+      set_pos.push_back(i);
+    }
+  }
+  if (!r.ok()) return;
+
+  // A set that moves X but not its descendant Y needs Y's units in a later layer than X's.
+  for (size_t i = 0; i < sets.size(); ++i) {
+    for (int x : sets[i]) {
+      for (int y = 0; y < model.num_variables(); ++y) {
+        if (job.site_of_variable[y] < 0 || !model.IsAncestor(x, y)) continue;
+        if (std::find(sets[i].begin(), sets[i].end(), y) != sets[i].end()) continue;
+        const SiteSpec& sx = spec.alignment[job.site_of_variable[x]];
+        const SiteSpec& sy = spec.alignment[job.site_of_variable[y]];
+        if (sy.layer > sx.layer) continue;
+        const Location loc = set_pos[i] == SIZE_MAX ? pos.interventions : pos.sets[set_pos[i]];
+        std::vector<std::string> names;
+        for (int v : sets[i]) names.push_back(model.variable(v).name);
+        r.Error(loc, absl::StrCat("training.interventions: the set [", absl::StrJoin(names, ", "), "] moves '",
+                                  model.variable(x).name, "' without its descendant '", model.variable(y).name,
+                                  "', but '", model.variable(y).name, "' is aligned in layer ", sy.layer,
+                                  ", not after '", model.variable(x).name, "' (layer ", sx.layer,
+                                  "), so the network could not recompute it; align '", model.variable(y).name,
+                                  "' in a later layer or intervene on both together"));
+      }
+    }
+  }
+  if (!r.ok()) return;
+  for (const auto& s : sets) {
+    InterventionSet is;
+    is.variables = s;
+    std::vector<std::string> names;
+    for (int v : s) names.push_back(model.variable(v).name);
+    is.name = absl::StrJoin(names, "+");
+    job.sets.push_back(std::move(is));
+  }
+
+  // The split.
+  auto split = causal::SplitInputs(model, spec.evaluation.held_out, spec.seed);
+  if (!split.ok()) {
+    r.Error(pos.held_out, absl::StrCat("evaluation.held_out: ", split.status().message()));
+    return;
+  }
+  job.split = std::move(*split);
+  job.distinct_eval_triples = causal::DistinctTriples(job.split.test.size(), job.sets.size());
+}
+
+}  // namespace
+
+absl::StatusOr<ResolvedJob> ResolveTree(const ConfigNode& root) {
+  Reader r;
+  Positions pos;
+  pos.root = root.loc;
+  ResolvedJob job;
+  JobSpec& spec = job.spec;
+  if (!root.IsMap()) {
+    return absl::InvalidArgumentError(
+        absl::StrCat(root.loc.ToString(), ": expected a config (a map with algorithm, network, alignment, ...), got ",
+                     root.Describe()));
+  }
+  r.CheckKeys(root, "", {"name", "seed", "algorithm", "network", "alignment", "training", "evaluation"});
+  if (const ConfigNode* n = root.Find("name")) {
+    if (auto s = r.String(*n, "name")) spec.name = *s;
+  }
+  if (spec.name.empty()) {
+    spec.name = std::filesystem::path(root.loc.source).stem().string();
+  }
+  if (const ConfigNode* n = root.Find("seed")) {
+    if (auto v = r.Int(*n, "seed", 0, INT64_MAX)) spec.seed = static_cast<uint64_t>(*v);
+  }
+  const ConfigNode* algo = r.Map(root.Find("algorithm"), "algorithm");
+  if (algo == nullptr) {
+    if (root.Find("algorithm") == nullptr) r.Error(root.loc, "needs an 'algorithm' (inputs, mechanisms, output)");
+  } else {
+    ReadAlgorithm(r, *algo, spec, pos);
+  }
+  ReadNetwork(r, r.Map(root.Find("network"), "network"), spec, pos);
+  ReadAlignment(r, r.Map(root.Find("alignment"), "alignment"), spec, pos);
+  ReadTraining(r, r.Map(root.Find("training"), "training"), spec, pos);
+  ReadEvaluation(r, r.Map(root.Find("evaluation"), "evaluation"), spec, pos);
+  if (!r.ok()) return absl::InvalidArgumentError(Combine(r.errors()));
+
+  causal::ModelError me;
+  auto model = causal::CausalModel::Create(spec.variables, &me);
+  if (!model.ok()) {
+    Location loc = pos.root;
+    std::string message = me.message;
+    if (me.variable >= 0) {
+      const VariableDecl& d = spec.variables[me.variable];
+      switch (me.part) {
+        case causal::ModelError::Part::kName: loc = pos.var_name[me.variable]; break;
+        case causal::ModelError::Part::kDomain: {
+          const auto& items = pos.var_domain_items[me.variable];
+          loc = me.offset >= 0 && me.offset < static_cast<int>(items.size()) ? items[me.offset]
+                                                                             : pos.var_domain[me.variable];
+          break;
+        }
+        case causal::ModelError::Part::kExpression: {
+          loc = pos.var_expr[me.variable].Advance(me.offset);
+          const char* what = d.role == Role::kOutput ? "output" : "mechanism";
+          if (message.rfind("'" + d.name + "'", 0) != 0 && message.rfind("output '", 0) != 0 &&
+              message.rfind("mechanisms form", 0) != 0) {
+            message = absl::StrCat(what, " '", d.name, "': ", message);
+          }
+          // Show the expression with a caret under the offending character.
+          if (d.expr.find('\n') == std::string::npos) {
+            absl::StrAppend(&message, "\n    ", d.expr, "\n    ", std::string(std::max(0, me.offset), ' '), "^");
+          }
+          break;
+        }
+      }
+    }
+    return absl::InvalidArgumentError(absl::StrCat(loc.ToString(), ": ", message));
+  }
+  job.model = std::move(*model);
+  Validate(r, pos, job);
+  if (!r.ok()) return absl::InvalidArgumentError(Combine(r.errors()));
+  return job;
+}
+
+absl::StatusOr<ResolvedJob> LoadJobFromText(const std::string& text, const std::string& source,
+                                            const std::vector<std::string>& overrides) {
+  auto tree = ParseYaml(text, source);
+  if (!tree.ok()) return tree.status();
+  for (size_t i = 0; i < overrides.size(); ++i) {
+    absl::Status st = ApplyOverride(*tree, overrides[i], static_cast<int>(i + 1));
+    if (!st.ok()) return st;
+  }
+  return ResolveTree(*tree);
+}
+
+absl::StatusOr<ResolvedJob> LoadJob(const std::string& path, const std::vector<std::string>& overrides) {
+  auto tree = ParseYamlFile(path);
+  if (!tree.ok()) return tree.status();
+  for (size_t i = 0; i < overrides.size(); ++i) {
+    absl::Status st = ApplyOverride(*tree, overrides[i], static_cast<int>(i + 1));
+    if (!st.ok()) return st;
+  }
+  return ResolveTree(*tree);
+}
+
+const char* ToString(EmbeddingInit v) { return v == EmbeddingInit::kLearned ? "learned" : "fixed_random"; }
+const char* ToString(Activation v) {
+  switch (v) {
+    case Activation::kRelu: return "relu";
+    case Activation::kGelu: return "gelu";
+    case Activation::kTanh: return "tanh";
+  }
+  return "?";
+}
+const char* ToString(OptimizerType v) { return v == OptimizerType::kAdam ? "adam" : "sgd"; }
+const char* ToString(SourceMode v) { return v == SourceMode::kInBatch ? "in_batch" : "independent"; }
+
+namespace {
+
+ConfigNode Scalar(const std::string& s, bool quoted = false) {
+  ConfigNode n;
+  n.kind = ConfigNode::Kind::kScalar;
+  n.scalar = s;
+  n.quoted = quoted;
+  return n;
+}
+ConfigNode MapNode() {
+  ConfigNode n;
+  n.kind = ConfigNode::Kind::kMap;
+  return n;
+}
+ConfigNode SeqNode() {
+  ConfigNode n;
+  n.kind = ConfigNode::Kind::kSequence;
+  return n;
+}
+void Put(ConfigNode& map, const std::string& key, ConfigNode value) {
+  map.entries.emplace_back(Scalar(key), std::move(value));
+}
+ConfigNode DomainNode(const DomainDecl& d) {
+  switch (d.kind) {
+    case DomainKind::kSymbols: {
+      ConfigNode s = SeqNode();
+      for (const auto& x : d.symbols) s.items.push_back(Scalar(x));
+      return s;
+    }
+    case DomainKind::kRange: {
+      ConfigNode m = MapNode();
+      ConfigNode r = SeqNode();
+      r.items.push_back(Scalar(absl::StrCat(d.lo)));
+      r.items.push_back(Scalar(absl::StrCat(d.hi)));
+      Put(m, "range", std::move(r));
+      return m;
+    }
+    default:
+      return Scalar("bool");
+  }
+}
+
+}  // namespace
+
+std::string ResolvedSpecYaml(const JobSpec& spec) {
+  ConfigNode root = MapNode();
+  Put(root, "name", Scalar(spec.name, true));
+  Put(root, "seed", Scalar(absl::StrCat(spec.seed)));
+  ConfigNode algo = MapNode(), inputs = MapNode(), mechs = MapNode(), output = MapNode();
+  for (const auto& v : spec.variables) {
+    if (v.role == Role::kInput) {
+      Put(inputs, v.name, DomainNode(*v.domain));
+    } else if (v.role == Role::kMechanism) {
+      ConfigNode m = MapNode();
+      Put(m, "expr", Scalar(v.expr, true));
+      if (v.domain) Put(m, "domain", DomainNode(*v.domain));
+      Put(mechs, v.name, std::move(m));
+    } else {
+      ConfigNode m = MapNode();
+      Put(m, "expr", Scalar(v.expr, true));
+      if (v.domain) Put(m, "classes", DomainNode(*v.domain));
+      Put(output, v.name, std::move(m));
+    }
+  }
+  Put(algo, "inputs", std::move(inputs));
+  Put(algo, "mechanisms", std::move(mechs));
+  Put(algo, "output", std::move(output));
+  Put(root, "algorithm", std::move(algo));
+
+  ConfigNode net = MapNode(), emb = MapNode(), hidden = SeqNode();
+  Put(net, "type", Scalar(spec.network.type));
+  Put(emb, "dim", Scalar(absl::StrCat(spec.network.embedding_dim)));
+  Put(emb, "init", Scalar(ToString(spec.network.embedding_init)));
+  Put(net, "embedding", std::move(emb));
+  for (int w : spec.network.hidden) hidden.items.push_back(Scalar(absl::StrCat(w)));
+  Put(net, "hidden", std::move(hidden));
+  Put(net, "activation", Scalar(ToString(spec.network.activation)));
+  Put(root, "network", std::move(net));
+
+  ConfigNode al = MapNode();
+  for (const auto& s : spec.alignment) {
+    ConfigNode site = MapNode(), units = SeqNode();
+    Put(site, "layer", Scalar(absl::StrCat(s.layer)));
+    for (int u : s.units) units.items.push_back(Scalar(absl::StrCat(u)));
+    Put(site, "units", std::move(units));
+    Put(al, s.variable, std::move(site));
+  }
+  Put(root, "alignment", std::move(al));
+
+  const TrainingSpec& t = spec.training;
+  ConfigNode tr = MapNode(), opt = MapNode(), lw = MapNode(), iv = SeqNode();
+  Put(tr, "steps", Scalar(absl::StrCat(t.steps)));
+  Put(tr, "batch_size", Scalar(absl::StrCat(t.batch_size)));
+  Put(opt, "type", Scalar(ToString(t.optimizer.type)));
+  Put(opt, "lr", Scalar(FormatDouble(t.optimizer.lr)));
+  Put(opt, "weight_decay", Scalar(FormatDouble(t.optimizer.weight_decay)));
+  Put(opt, "momentum", Scalar(FormatDouble(t.optimizer.momentum)));
+  Put(tr, "optimizer", std::move(opt));
+  Put(lw, "task", Scalar(FormatDouble(t.task_weight)));
+  Put(lw, "interchange", Scalar(FormatDouble(t.interchange_weight)));
+  Put(tr, "loss_weights", std::move(lw));
+  for (const auto& set : t.interventions) {
+    ConfigNode s = SeqNode();
+    for (const auto& name : set) s.items.push_back(Scalar(name));
+    iv.items.push_back(std::move(s));
+  }
+  if (!iv.items.empty()) Put(tr, "interventions", std::move(iv));
+  Put(tr, "sources", Scalar(ToString(t.sources)));
+  Put(tr, "source_gradients", Scalar(t.source_gradients ? "true" : "false"));
+  Put(tr, "threads", Scalar(absl::StrCat(t.threads)));
+  Put(tr, "checkpoint_every", Scalar(absl::StrCat(t.checkpoint_every)));
+  Put(root, "training", std::move(tr));
+
+  ConfigNode ev = MapNode();
+  Put(ev, "every", Scalar(absl::StrCat(spec.evaluation.every)));
+  Put(ev, "held_out", Scalar(FormatDouble(spec.evaluation.held_out)));
+  Put(ev, "triples", Scalar(absl::StrCat(spec.evaluation.triples)));
+  Put(root, "evaluation", std::move(ev));
+  return ToYaml(root);
+}
+
+std::string SpecHash(const JobSpec& spec) {
+  const std::string text = ResolvedSpecYaml(spec);
+  uint64_t h = 0xcbf29ce484222325ull;
+  for (unsigned char c : text) {
+    h ^= c;
+    h *= 0x100000001b3ull;
+  }
+  char buf[17];
+  std::snprintf(buf, sizeof(buf), "%016llx", static_cast<unsigned long long>(h));
+  return buf;
+}
+
+std::string Summarize(const ResolvedJob& job) {
+  const JobSpec& spec = job.spec;
+  const causal::CausalModel& m = *job.model;
+  std::ostringstream out;
+  out << "job " << spec.name << " (seed " << spec.seed << ")\n";
+  out << "algorithm: " << m.num_variables() << " variables\n";
+  for (int v : m.topological_order()) {
+    const causal::Variable& var = m.variable(v);
+    const char* role = var.role == Role::kInput ? "input" : var.role == Role::kOutput ? "output" : "mechanism";
+    std::vector<std::string> values;
+    for (int k = 0; k < var.domain.size() && k < 12; ++k) values.push_back(m.ValueName(v, k));
+    if (var.domain.size() > 12) values.push_back("...");
+    out << "  " << var.name << " (" << role << ", " << var.domain.size() << " values: "
+        << absl::StrJoin(values, ", ") << ")";
+    if (!var.parents.empty()) {
+      std::vector<std::string> ps;
+      for (int p : var.parents) ps.push_back(m.variable(p).name);
+      out << " <- " << absl::StrJoin(ps, ", ") << " = " << var.expr;
+    }
+    out << "\n";
+  }
+  int in_width = 0;
+  for (int i : m.inputs()) {
+    (void)i;
+    in_width += spec.network.embedding_dim;
+  }
+  out << "network: mlp, embeddings " << m.inputs().size() << " x " << spec.network.embedding_dim << " = "
+      << in_width << " (" << ToString(spec.network.embedding_init) << "), activation "
+      << ToString(spec.network.activation) << "\n";
+  for (size_t l = 0; l < spec.network.hidden.size(); ++l) {
+    out << "  layer " << l << ": " << spec.network.hidden[l] << " units";
+    std::vector<std::string> here;
+    for (const auto& s : spec.alignment) {
+      if (s.layer != static_cast<int>(l)) continue;
+      std::string units = s.units.size() > 1 && s.units.back() - s.units.front() + 1 == static_cast<int>(s.units.size())
+                              ? absl::StrCat(s.units.front(), "-", s.units.back())
+                              : absl::StrCat("[", absl::StrJoin(s.units, ","), "]");
+      here.push_back(absl::StrCat(s.variable, " = units ", units, " (", s.units.size(), ")"));
+    }
+    if (!here.empty()) out << "; " << absl::StrJoin(here, "; ");
+    out << "\n";
+  }
+  out << "  output: " << m.variable(m.output()).domain.size() << " classes (" << m.variable(m.output()).name << ")\n";
+  std::vector<std::string> set_names;
+  for (const auto& s : job.sets) set_names.push_back(s.name);
+  out << "interventions: " << (set_names.empty() ? "none" : absl::StrJoin(set_names, ", ")) << "\n";
+  out << "input space: " << m.input_space_size() << " inputs; held out: " << job.split.test.size()
+      << " (" << spec.evaluation.held_out << "); training: " << job.split.train.size() << "\n";
+  out << "evaluation triples: " << job.distinct_eval_triples << " distinct; ";
+  if (job.distinct_eval_triples <= static_cast<uint64_t>(spec.evaluation.triples)) {
+    out << "all are evaluated\n";
+  } else {
+    out << spec.evaluation.triples << " sampled\n";
+  }
+  out << "training: " << spec.training.steps << " steps x batch " << spec.training.batch_size << ", "
+      << ToString(spec.training.optimizer.type) << " lr " << FormatDouble(spec.training.optimizer.lr)
+      << ", loss weights task " << FormatDouble(spec.training.task_weight) << " interchange "
+      << FormatDouble(spec.training.interchange_weight)
+      << (spec.training.interchange_weight == 0 ? " (standard training)" : "") << ", sources "
+      << ToString(spec.training.sources) << "\n";
+  return out.str();
+}
+
+}  // namespace graft::spec

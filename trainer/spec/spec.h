@@ -1,0 +1,121 @@
+// A job's specification: the typed form of a config file (algorithm, network, alignment,
+// training, evaluation), loaded from YAML with --set overrides, validated completely, and
+// resolved into a compiled causal model, an input split and intervention sets. Torch-free, so
+// the client and the coordinator give exactly the worker's messages.
+// Thread-safety: plain values; a ResolvedJob is immutable after LoadJob returns.
+#ifndef GRAFT_TRAINER_SPEC_SPEC_H_
+#define GRAFT_TRAINER_SPEC_SPEC_H_
+
+#include <cstdint>
+#include <memory>
+#include <string>
+#include <vector>
+
+#include "absl/status/statusor.h"
+#include "trainer/causal/model.h"
+#include "trainer/spec/config_tree.h"
+
+namespace graft::spec {
+
+enum class EmbeddingInit { kLearned, kFixedRandom };
+enum class Activation { kRelu, kGelu, kTanh };
+enum class OptimizerType { kAdam, kSgd };
+enum class SourceMode { kInBatch, kIndependent };
+
+struct NetworkSpec {
+  std::string type = "mlp";           // only "mlp" so far
+  int embedding_dim = 8;              // width of each input's embedding
+  EmbeddingInit embedding_init = EmbeddingInit::kLearned;  // fixed_random: frozen N(0,1) rows
+  std::vector<int> hidden = {64, 64, 64};                  // widths of the hidden layers
+  Activation activation = Activation::kRelu;
+};
+
+// One aligned variable: units of the output of hidden layer `layer` (after the activation).
+struct SiteSpec {
+  std::string variable;
+  int layer = 0;
+  std::vector<int> units;  // ascending, distinct
+  Location loc;            // of the variable's key in `alignment`
+};
+
+struct OptimizerSpec {
+  OptimizerType type = OptimizerType::kAdam;
+  double lr = 0.001;          // learning rate
+  double weight_decay = 0.0;  // L2 penalty
+  double momentum = 0.9;      // sgd only
+};
+
+struct TrainingSpec {
+  int64_t steps = 2000;      // optimiser steps
+  int batch_size = 256;      // base inputs per step
+  OptimizerSpec optimizer;
+  double task_weight = 1.0;          // loss_weights.task
+  double interchange_weight = 1.0;   // loss_weights.interchange; 0 is standard training
+  // Intervention sets, each a list of aligned variable names; sampled uniformly per example.
+  // Default: every non-empty subset of the aligned variables (up to 3), else each one alone
+  // and all together.
+  std::vector<std::vector<std::string>> interventions;
+  SourceMode sources = SourceMode::kInBatch;  // in_batch: a permutation of the batch
+  bool source_gradients = true;               // gradients through the source run
+  int threads = 1;                            // intra-op and BLAS threads of the job
+  int64_t checkpoint_every = 500;             // steps between checkpoints
+};
+
+struct EvaluationSpec {
+  int64_t every = 250;     // steps between evaluations (also at step 0 and the last step)
+  double held_out = 0.2;   // fraction of the input space never used in training
+  int64_t triples = 4096;  // evaluation triples (all distinct ones when fewer exist)
+};
+
+struct JobSpec {
+  std::string name;
+  uint64_t seed = 0;
+  std::vector<causal::VariableDecl> variables;  // inputs, mechanisms, output: declaration order
+  NetworkSpec network;
+  std::vector<SiteSpec> alignment;  // in the order written
+  TrainingSpec training;
+  EvaluationSpec evaluation;
+};
+
+// One intervention set, resolved.
+struct InterventionSet {
+  std::string name;           // variables in declaration order joined by '+'
+  std::vector<int> variables; // model variable indices, ascending
+};
+
+// A validated job, ready for the trainer.
+struct ResolvedJob {
+  JobSpec spec;
+  std::shared_ptr<const causal::CausalModel> model;
+  causal::InputSplit split;
+  std::vector<InterventionSet> sets;
+  std::vector<int> site_of_variable;  // model variable -> index into spec.alignment, or -1
+  uint64_t distinct_eval_triples = 0;
+};
+
+// Loads, overrides (each `key.path=value`), validates and resolves a config. Every error is
+// InvalidArgument with one line per problem: "FILE:LINE:COL: message" (or "--set #N:1:COL: ...").
+// A missing file is NotFound.
+absl::StatusOr<ResolvedJob> LoadJob(const std::string& path, const std::vector<std::string>& overrides);
+absl::StatusOr<ResolvedJob> LoadJobFromText(const std::string& text, const std::string& source,
+                                            const std::vector<std::string>& overrides);
+// The same from an already parsed (and overridden) tree.
+absl::StatusOr<ResolvedJob> ResolveTree(const ConfigNode& root);
+
+// The fully resolved spec as YAML (every field, defaults filled in); loading it gives the same
+// JobSpec. Stable: the same spec always gives the same text.
+std::string ResolvedSpecYaml(const JobSpec& spec);
+// A short hex hash (FNV-1a 64) of ResolvedSpecYaml.
+std::string SpecHash(const JobSpec& spec);
+
+// The human summary printed by `graft-worker check`.
+std::string Summarize(const ResolvedJob& job);
+
+const char* ToString(EmbeddingInit v);
+const char* ToString(Activation v);
+const char* ToString(OptimizerType v);
+const char* ToString(SourceMode v);
+
+}  // namespace graft::spec
+
+#endif  // GRAFT_TRAINER_SPEC_SPEC_H_
