@@ -549,8 +549,8 @@ TEST(Expression, AgreesWithPythonOnRandomExpressions) {
                  {"spare", ValueType::kNumber}, {"z", ValueType::kNumber},
                  {"lane", ValueType::kSymbol},  {"dock", ValueType::kSymbol}};
   c.symbols = {"north", "south", "east", "west"};
-  constexpr int kExpressions = 400;
-  constexpr int kInputsPerExpression = 3;
+  constexpr int kExpressions = 600;
+  constexpr int kInputsPerExpression = 4;
 
   RandomExpressionWriter writer(20240611);
   std::string cases =
@@ -630,6 +630,44 @@ TEST(Expression, AgreesWithPythonOnRandomExpressions) {
                         std::to_string(symbols) + " symbols, " + std::to_string(zero_divisors) +
                         " zero divisors)"));
   EXPECT_THAT(run.output, HasSubstr("all agree"));
+}
+
+TEST(Expression, CheckerAcceptsOnlyWhatMuParserAccepts) {
+  // Random token soups: whenever our checker accepts one, muParser must compile it too (a
+  // refusal by muParser after the checker said yes shows up as "syntax error: ..."), and it
+  // must evaluate without an internal error.
+  const std::vector<std::string> pieces = {
+      "weight", "stops", "lane", "north", "1", "0.5", "true", "+", "-", "*", "/", "%", "!",
+      "<", "<=", "==", "!=", "&&", "||", "?", ":", "(", ")", ",", "min(", "abs(", "mod("};
+  const ExpressionContext c = RoutingContext();
+  std::mt19937 rng(7);
+  int accepted = 0;
+  for (int n = 0; n < 30000; ++n) {
+    const int length = std::uniform_int_distribution<int>(1, 9)(rng);
+    std::string text;
+    for (int i = 0; i < length; ++i) {
+      text += pieces[std::uniform_int_distribution<size_t>(0, pieces.size() - 1)(rng)];
+      if (rng() % 2) text += " ";
+    }
+    ExpressionError error;
+    absl::StatusOr<std::unique_ptr<CompiledExpression>> e =
+        CompiledExpression::Create(text, c, &error);
+    if (!e.ok()) {
+      ASSERT_THAT(error.message, Not(HasSubstr("syntax error:"))) << "'" << text << "'";
+      ASSERT_GE(error.offset, 0) << text;
+      ASSERT_LE(error.offset, static_cast<int>(text.size())) << text;
+      continue;
+    }
+    ++accepted;
+    std::vector<Value> inputs;
+    for (int p : (*e)->parents()) {
+      inputs.push_back(c.variables[p].type == ValueType::kSymbol ? Value::Symbol(1)
+                                                                 : Value::Number(2));
+    }
+    absl::StatusOr<Value> v = (*e)->Evaluate(inputs);
+    ASSERT_NE(v.status().code(), absl::StatusCode::kInternal) << text << ": " << v.status();
+  }
+  EXPECT_GT(accepted, 500);
 }
 
 TEST(Expression, PythonCheckerCatchesTruncatedModulo) {
