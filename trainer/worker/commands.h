@@ -4,6 +4,8 @@
 #ifndef GRAFT_TRAINER_WORKER_COMMANDS_H_
 #define GRAFT_TRAINER_WORKER_COMMANDS_H_
 
+#include <atomic>
+#include <cstdint>
 #include <ostream>
 #include <string>
 #include <vector>
@@ -13,11 +15,28 @@ namespace graft::worker {
 inline constexpr int kExitOk = 0;
 inline constexpr int kExitFailure = 1;
 inline constexpr int kExitInvalidConfig = 2;
+// Stopped by a signal or --stop-after-step with a checkpoint written: resume with --resume.
+inline constexpr int kExitInterrupted = 3;
 
 // `graft-worker check CONFIG [--set k=v]...`: validates and prints the summary to `out`, or
 // the errors (one "FILE:LINE:COL: message" per line) to `err`.
 int CheckCommand(const std::string& config, const std::vector<std::string>& overrides, std::ostream& out,
                  std::ostream& err);
+
+struct RunArgs {
+  std::string config;
+  std::vector<std::string> overrides;
+  std::string out_dir;
+  std::string resume_dir;
+  int64_t stop_after_step = -1;
+  std::string probe_path;
+};
+
+// `graft-worker run CONFIG --out DIR [--set k=v]... [--resume DIR]`: trains the job, writing
+// the run directory; the live progress line goes to `err`. `stop` (may be null) is polled at
+// step boundaries, e.g. set by SIGINT/SIGTERM.
+int RunCommand(const RunArgs& args, const std::atomic<bool>* stop, std::ostream& out, std::ostream& err,
+               bool err_is_terminal);
 
 }  // namespace graft::worker
 

@@ -1,10 +1,20 @@
 // graft-worker: trains and checks jobs. Flag parsing plus one call into the worker library.
+#include <unistd.h>
+
+#include <atomic>
+#include <csignal>
 #include <iostream>
 #include <string>
 #include <vector>
 
 #include "CLI/CLI.hpp"
 #include "trainer/worker/commands.h"
+
+namespace {
+// Set by SIGINT/SIGTERM; the trainer checkpoints and stops at the next step boundary.
+std::atomic<bool> stop_requested{false};
+extern "C" void OnStopSignal(int) { stop_requested.store(true); }
+}  // namespace
 
 int main(int argc, char** argv) {
   CLI::App app{"graft-worker: trains networks to implement an algorithm (IIT) and measures IIA"};
@@ -16,6 +26,18 @@ int main(int argc, char** argv) {
   check->add_option("CONFIG", check_config, "YAML config file")->required();
   check->add_option("--set", check_sets, "Override a key: key.path=value (repeatable)")->take_all();
 
+  graft::worker::RunArgs run_args;
+  CLI::App* run = app.add_subcommand("run", "Train a job in this process and write its run directory");
+  run->add_option("CONFIG", run_args.config, "YAML config file")->required();
+  run->add_option("--out", run_args.out_dir, "Run directory for spec.yaml, metrics.jsonl, result.json, "
+                                             "checkpoint.pt, weights.pt")->required();
+  run->add_option("--set", run_args.overrides, "Override a key: key.path=value (repeatable)")->take_all();
+  run->add_option("--resume", run_args.resume_dir, "Continue from the checkpoint in this run directory");
+  run->add_option("--stop-after-step", run_args.stop_after_step,
+                  "Stop as if interrupted after this step, with a checkpoint (for resume drills)");
+  run->add_option("--probe", run_args.probe_path,
+                  "Also write the first evaluation triples with base and intervened logits to this JSON file");
+
   try {
     app.parse(argc, argv);
   } catch (const CLI::ParseError& e) {
@@ -23,6 +45,11 @@ int main(int argc, char** argv) {
   }
   if (check->parsed()) {
     return graft::worker::CheckCommand(check_config, check_sets, std::cout, std::cerr);
+  }
+  if (run->parsed()) {
+    std::signal(SIGINT, OnStopSignal);
+    std::signal(SIGTERM, OnStopSignal);
+    return graft::worker::RunCommand(run_args, &stop_requested, std::cout, std::cerr, isatty(STDERR_FILENO) == 1);
   }
   return graft::worker::kExitFailure;
 }

@@ -1,0 +1,298 @@
+#!/usr/bin/python3
+"""Independent float64 recomputation of a graft MLP's base and intervened logits.
+
+Usage: /usr/bin/python3 recompute_intervention.py RUN_DIR
+
+RUN_DIR holds what graft wrote after training:
+  spec.yaml    the resolved job spec. Used: algorithm.inputs (name -> domain: a list of symbols,
+               {range: [lo, hi]} or bool), algorithm.output (its classes, when listed),
+               network.embedding.dim, network.hidden, network.activation (relu | gelu | tanh),
+               alignment (variable -> {layer: K, units: [unit indices]}).
+  weights.pt   LibTorch's torch::pickle_save of a c10::Dict<std::string, Tensor>, which
+               torch.load returns as a plain dict. Exactly these keys: embed.<input> [values, dim]
+               for each input, hidden.<k>.weight [out, in] and hidden.<k>.bias [out] for each
+               hidden layer k, out.weight [classes, last width], out.bias [classes].
+  probe.json   {"inputs": [...], "sets": [{"name", "variables"}], "triples": [{"base": [value
+               index per input], "source": [...], "set": name}], "base_logits": [[...]],
+               "intervened_logits": [[...]]}, one logits row per triple.
+
+The model, recomputed here with NumPy in float64 from the weights alone:
+  x   = concatenation over inputs (in declaration order) of embed.<input>[value index]
+  h_k = act(W_k h_{k-1} + b_k), h_{-1} = x;  logits = out.weight @ h_last + out.bias
+  gelu is the exact form x * 0.5 * (1 + erf(x / sqrt(2))) (scipy.special.erf).
+The interchange intervention (base b, source s, set V): run s and keep its activations h^s_k;
+run b, and for k from 0 upward, after computing h_k overwrite the units of every variable of V
+aligned at layer k with h^s_k at those units, then continue from the overwritten h_k.
+Only the weights, the raw input value indices, the source choices and the alignment are used;
+no activation graft computed is read.
+
+Checks: weights match the spec exactly (keys and shapes); both logits agree with the probe's
+within 1e-5 absolute; and at least one triple's intervened logits differ from its base logits
+by more than 1e-3, so agreement is not vacuous.
+
+Exit codes: 0 agreement, 1 any mismatch, failed assertion, malformed input or missing module.
+"""
+
+import json
+import math
+import os
+import re
+import sys
+
+TOLERANCE = 1e-5       # |graft float32 logit - float64 recomputation|
+MIN_EFFECT = 1e-3      # some intervention must move some logit by more than this
+
+
+class CheckFailed(Exception):
+    pass
+
+
+def require(condition, message):
+    if not condition:
+        raise CheckFailed(message)
+
+
+def import_modules():
+    modules = {}
+    for name in ("numpy", "scipy.special", "torch", "yaml"):
+        try:
+            modules[name] = __import__(name, fromlist=["_"])
+        except ImportError as e:  # a missing module is a failure, never a skip
+            print(f"recompute_intervention: cannot import {name} ({e}); install Debian's python3-numpy, "
+                  f"python3-scipy, python3-torch and python3-yaml and run with /usr/bin/python3",
+                  file=sys.stderr)
+            sys.exit(1)
+    return modules
+
+
+def spec_loader(yaml):
+    """A safe loader where only true/false are booleans (YAML 1.2 core schema), so symbols such
+    as `yes`, `no`, `on` and `off` stay text as graft reads them."""
+
+    class Loader(yaml.SafeLoader):
+        pass
+
+    Loader.yaml_implicit_resolvers = {
+        first: [(tag, rx) for tag, rx in resolvers if tag != "tag:yaml.org,2002:bool"]
+        for first, resolvers in yaml.SafeLoader.yaml_implicit_resolvers.items()
+    }
+    Loader.add_implicit_resolver("tag:yaml.org,2002:bool", re.compile(r"^(?:true|false)$"), list("tf"))
+    return Loader
+
+
+def domain_size(name, domain):
+    if isinstance(domain, list):
+        require(len(domain) > 0, f"spec.yaml: algorithm.inputs.{name}: empty list of values")
+        return len(domain)
+    if domain == "bool":
+        return 2
+    if isinstance(domain, dict) and set(domain) == {"range"}:
+        r = domain["range"]
+        require(isinstance(r, list) and len(r) == 2 and all(isinstance(v, int) for v in r) and r[0] <= r[1],
+                f"spec.yaml: algorithm.inputs.{name}.range: expected [lo, hi] with lo <= hi, got {r!r}")
+        return r[1] - r[0] + 1
+    raise CheckFailed(f"spec.yaml: algorithm.inputs.{name}: unknown domain {domain!r}")
+
+
+def parse_units(variable, units):
+    if isinstance(units, int) and not isinstance(units, bool):
+        return [units]
+    if isinstance(units, str):
+        m = re.fullmatch(r"(\d+)-(\d+)", units)
+        require(m is not None, f"spec.yaml: alignment.{variable}.units: expected a list, got {units!r}")
+        return list(range(int(m.group(1)), int(m.group(2)) + 1))
+    require(isinstance(units, list) and units and all(isinstance(u, int) and not isinstance(u, bool) for u in units),
+            f"spec.yaml: alignment.{variable}.units: expected a non-empty list of unit indices, got {units!r}")
+    return list(units)
+
+
+def read_spec(run_dir, yaml):
+    path = os.path.join(run_dir, "spec.yaml")
+    with open(path, encoding="utf-8") as f:
+        spec = yaml.load(f, Loader=spec_loader(yaml))
+    require(isinstance(spec, dict), f"{path}: expected a map")
+    try:
+        algo = spec["algorithm"]
+        inputs = algo["inputs"]
+        net = spec["network"]
+        dim = net["embedding"]["dim"]
+        hidden = net["hidden"]
+        activation = net["activation"]
+    except (KeyError, TypeError) as e:
+        raise CheckFailed(f"{path}: missing key {e}") from None
+    require(isinstance(inputs, dict) and inputs, f"{path}: algorithm.inputs must be a non-empty map")
+    require(isinstance(dim, int) and dim > 0, f"{path}: network.embedding.dim must be a positive integer")
+    require(isinstance(hidden, list) and hidden and all(isinstance(w, int) and w > 0 for w in hidden),
+            f"{path}: network.hidden must be a non-empty list of positive widths")
+    require(activation in ("relu", "gelu", "tanh"), f"{path}: unknown network.activation {activation!r}")
+    names = [str(n) for n in inputs]
+    sizes = [domain_size(str(n), d) for n, d in inputs.items()]
+
+    classes = None
+    output = algo.get("output")
+    if isinstance(output, dict) and len(output) == 1:
+        (_, out_decl), = output.items()
+        if isinstance(out_decl, dict) and isinstance(out_decl.get("classes"), list):
+            classes = len(out_decl["classes"])
+
+    alignment = {}
+    for variable, site in (spec.get("alignment") or {}).items():
+        require(isinstance(site, dict) and "layer" in site and "units" in site,
+                f"{path}: alignment.{variable}: expected {{layer, units}}")
+        layer = site["layer"]
+        require(isinstance(layer, int) and 0 <= layer < len(hidden),
+                f"{path}: alignment.{variable}.layer {layer!r} is not a layer of network.hidden {hidden}")
+        units = parse_units(variable, site["units"])
+        require(all(0 <= u < hidden[layer] for u in units),
+                f"{path}: alignment.{variable}.units {units} fall outside layer {layer} (width {hidden[layer]})")
+        alignment[str(variable)] = (layer, units)
+    return {"names": names, "sizes": sizes, "dim": dim, "hidden": hidden, "activation": activation,
+            "classes": classes, "alignment": alignment}
+
+
+def read_weights(run_dir, spec, np, torch):
+    path = os.path.join(run_dir, "weights.pt")
+    loaded = torch.load(path, map_location="cpu")
+    require(type(loaded) is dict, f"{path}: torch.load gave {type(loaded).__name__}, expected a plain dict")
+    for k, v in loaded.items():
+        require(isinstance(k, str) and isinstance(v, torch.Tensor), f"{path}: entry {k!r} is not a named tensor")
+
+    out_weight = loaded.get("out.weight")
+    require(out_weight is not None and out_weight.dim() == 2, f"{path}: needs a 2-d 'out.weight'")
+    num_classes = out_weight.shape[0]
+    if spec["classes"] is not None:
+        require(num_classes == spec["classes"],
+                f"{path}: out.weight has {num_classes} classes, the spec's output lists {spec['classes']}")
+
+    expected = {}
+    for name, size in zip(spec["names"], spec["sizes"]):
+        expected[f"embed.{name}"] = (size, spec["dim"])
+    width_in = len(spec["names"]) * spec["dim"]
+    for k, width in enumerate(spec["hidden"]):
+        expected[f"hidden.{k}.weight"] = (width, width_in)
+        expected[f"hidden.{k}.bias"] = (width,)
+        width_in = width
+    expected["out.weight"] = (num_classes, width_in)
+    expected["out.bias"] = (num_classes,)
+
+    missing = sorted(set(expected) - set(loaded))
+    extra = sorted(set(loaded) - set(expected))
+    require(not missing and not extra, f"{path}: keys differ from the spec: missing {missing}, unexpected {extra}")
+    for key, shape in expected.items():
+        got = tuple(loaded[key].shape)
+        require(got == shape, f"{path}: {key} has shape {list(got)}, expected {list(shape)}")
+    return {k: loaded[k].detach().to(torch.float64).numpy().copy() for k in expected}, num_classes
+
+
+def activation_function(kind, np, erf):
+    if kind == "relu":
+        return lambda x: np.maximum(x, 0.0)
+    if kind == "tanh":
+        return np.tanh
+    return lambda x: x * 0.5 * (1.0 + erf(x / math.sqrt(2.0)))
+
+
+def main(argv):
+    if len(argv) != 2:
+        print("usage: recompute_intervention.py RUN_DIR", file=sys.stderr)
+        return 1
+    run_dir = argv[1]
+    mods = import_modules()
+    np, torch, yaml = mods["numpy"], mods["torch"], mods["yaml"]
+    erf = mods["scipy.special"].erf
+    try:
+        spec = read_spec(run_dir, yaml)
+        weights, num_classes = read_weights(run_dir, spec, np, torch)
+        with open(os.path.join(run_dir, "probe.json"), encoding="utf-8") as f:
+            probe = json.load(f)
+        return check(spec, weights, num_classes, probe, np, activation_function(spec["activation"], np, erf))
+    except CheckFailed as e:
+        print(f"recompute_intervention: FAILED: {e}", file=sys.stderr)
+        return 1
+    except (OSError, ValueError, KeyError, TypeError, RuntimeError, yaml.YAMLError) as e:
+        print(f"recompute_intervention: FAILED: {type(e).__name__}: {e}", file=sys.stderr)
+        return 1
+
+
+def check(spec, weights, num_classes, probe, np, act):
+    names = spec["names"]
+    require(probe.get("inputs") == names, f"probe.json: inputs {probe.get('inputs')} differ from the spec's {names}")
+    sets = {}
+    for s in probe["sets"]:
+        for v in s["variables"]:
+            require(v in spec["alignment"], f"probe.json: set {s['name']!r} names {v!r}, which is not aligned")
+        sets[s["name"]] = list(s["variables"])
+    triples = probe["triples"]
+    require(len(triples) > 0, "probe.json: no triples")
+    base_probe = np.asarray(probe["base_logits"], dtype=np.float64)
+    inter_probe = np.asarray(probe["intervened_logits"], dtype=np.float64)
+    for label, arr in (("base_logits", base_probe), ("intervened_logits", inter_probe)):
+        require(arr.shape == (len(triples), num_classes),
+                f"probe.json: {label} has shape {list(arr.shape)}, expected [{len(triples)}, {num_classes}]")
+        require(np.all(np.isfinite(arr)), f"probe.json: {label} has non-finite values")
+
+    embed = [weights[f"embed.{n}"] for n in names]
+    layers = [(weights[f"hidden.{k}.weight"], weights[f"hidden.{k}.bias"]) for k in range(len(spec["hidden"]))]
+    head_w, head_b = weights["out.weight"], weights["out.bias"]
+
+    def indices(triple, key):
+        values = triple[key]
+        require(isinstance(values, list) and len(values) == len(names),
+                f"probe.json: triple {key} {values!r} needs one value index per input")
+        for v, size, n in zip(values, spec["sizes"], names):
+            require(isinstance(v, int) and 0 <= v < size, f"probe.json: {key} value {v!r} of {n} is not in [0, {size})")
+        return values
+
+    def embed_row(values):
+        return np.concatenate([e[v] for e, v in zip(embed, values)])
+
+    def run(values, overwrite=None):
+        """Activations of every layer and the logits; `overwrite[k]` = (units, values) at layer k."""
+        h = embed_row(values)
+        acts = []
+        for k, (w, b) in enumerate(layers):
+            h = act(w @ h + b)
+            if overwrite and k in overwrite:
+                h = h.copy()
+                for units, src in overwrite[k]:
+                    h[units] = src[units]
+            acts.append(h)
+        return acts, head_w @ h + head_b
+
+    base_mine = np.empty_like(base_probe)
+    inter_mine = np.empty_like(inter_probe)
+    for i, t in enumerate(triples):
+        require(t["set"] in sets, f"probe.json: triple {i} uses unknown set {t['set']!r}")
+        b, s = indices(t, "base"), indices(t, "source")
+        source_acts, _ = run(s)
+        overwrite = {}
+        for v in sets[t["set"]]:
+            layer, units = spec["alignment"][v]
+            overwrite.setdefault(layer, []).append((units, source_acts[layer]))
+        _, base_mine[i] = run(b)
+        _, inter_mine[i] = run(b, overwrite)
+
+    d_base = np.abs(base_mine - base_probe)
+    d_inter = np.abs(inter_mine - inter_probe)
+    print(f"max |diff| base={d_base.max():.3g} intervened={d_inter.max():.3g} over {len(triples)} triples")
+    ok = True
+    for label, diff in (("base", d_base), ("intervened", d_inter)):
+        bad = np.argwhere(diff > TOLERANCE)
+        for i, c in bad[:10]:
+            mine = base_mine if label == "base" else inter_mine
+            theirs = base_probe if label == "base" else inter_probe
+            print(f"  {label} logits of triple {i} class {c}: graft {theirs[i, c]!r}, recomputed {mine[i, c]!r}")
+        if len(bad):
+            print(f"MISMATCH: {len(bad)} {label} logits differ by more than {TOLERANCE}")
+            ok = False
+    effect = np.abs(inter_mine - base_mine).max(axis=1)
+    moved = int(np.sum(effect > MIN_EFFECT))
+    print(f"{moved} of {len(triples)} triples: the intervention moves a logit by more than {MIN_EFFECT}")
+    if moved == 0:
+        print("FAILED: no intervention changes any logit; the check would be vacuous")
+        ok = False
+    return 0 if ok else 1
+
+
+if __name__ == "__main__":
+    sys.exit(main(sys.argv))

@@ -1,0 +1,811 @@
+#include "trainer/train/trainer.h"
+
+#include <dlfcn.h>
+#include <link.h>
+#include <sys/resource.h>
+
+#include <algorithm>
+#include <chrono>
+#include <cmath>
+#include <cstdio>
+#include <filesystem>
+#include <fstream>
+#include <iomanip>
+#include <map>
+#include <set>
+#include <sstream>
+
+#include <torch/torch.h>
+
+#include "absl/status/status.h"
+#include "absl/strings/str_cat.h"
+#include "nlohmann/json.hpp"
+#include "trainer/causal/rng.h"
+#include "trainer/eval/wilson.h"
+#include "trainer/net/mlp.h"
+
+#ifndef GRAFT_VERSION
+#define GRAFT_VERSION "unknown"
+#endif
+#ifndef GRAFT_COMMIT
+#define GRAFT_COMMIT "unknown"
+#endif
+
+namespace graft::train {
+namespace {
+
+namespace fs = std::filesystem;
+using json = nlohmann::json;
+using torch::Tensor;
+
+// ---------------------------------------------------------------------------------------------
+// Process facts for provenance.
+
+using BlasSetThreads = void (*)(int);
+using BlasGetThreads = int (*)();
+
+std::string BlasLibrary() {
+  std::string found;
+  dl_iterate_phdr(
+      [](struct dl_phdr_info* info, size_t, void* data) -> int {
+        std::string name = info->dlpi_name ? info->dlpi_name : "";
+        if (name.find("blas") != std::string::npos) {
+          std::error_code ec;
+          fs::path real = fs::canonical(name, ec);
+          auto* out = static_cast<std::string*>(data);
+          if (!out->empty()) *out += ", ";
+          *out += ec ? name : real.string();
+        }
+        return 0;
+      },
+      &found);
+  return found.empty() ? "none found (torch's built-in kernels)" : found;
+}
+
+// Sets OpenBLAS's own pool (which torch::set_num_threads does not touch); returns the count it
+// reports afterwards, or -1 when the BLAS in the process is not OpenBLAS.
+int SetBlasThreads(int threads) {
+  auto set = reinterpret_cast<BlasSetThreads>(dlsym(RTLD_DEFAULT, "openblas_set_num_threads"));
+  auto get = reinterpret_cast<BlasGetThreads>(dlsym(RTLD_DEFAULT, "openblas_get_num_threads"));
+  if (set == nullptr || get == nullptr) return -1;
+  set(threads);
+  return get();
+}
+
+std::string CpuModel() {
+  std::ifstream in("/proc/cpuinfo");
+  std::string line;
+  while (std::getline(in, line)) {
+    if (line.rfind("model name", 0) == 0) {
+      const size_t colon = line.find(':');
+      if (colon != std::string::npos) return line.substr(colon + 2);
+    }
+  }
+  return "unknown";
+}
+
+double PeakRssMb() {
+  struct rusage ru;
+  getrusage(RUSAGE_SELF, &ru);
+  return static_cast<double>(ru.ru_maxrss) / 1024.0;  // Linux reports KiB
+}
+
+// ---------------------------------------------------------------------------------------------
+// Counterfactual labels by batched gathers over the compiled tables.
+
+class LabelTables {
+ public:
+  LabelTables(const causal::CausalModel& model, const std::vector<spec::InterventionSet>& sets) : model_(model) {
+    const int n = model.num_variables();
+    tables_.resize(n);
+    strides_.resize(n);
+    in_set_.resize(n);
+    for (int v = 0; v < n; ++v) {
+      const causal::Variable& var = model.variable(v);
+      if (var.role == causal::Role::kInput) continue;
+      std::vector<int64_t> table(var.table.begin(), var.table.end());
+      tables_[v] = torch::tensor(table, torch::kInt64);
+      strides_[v] = var.strides;
+      std::vector<uint8_t> member(sets.size(), 0);
+      bool any = false;
+      for (size_t s = 0; s < sets.size(); ++s) {
+        if (std::find(sets[s].variables.begin(), sets[s].variables.end(), v) != sets[s].variables.end()) {
+          member[s] = 1;
+          any = true;
+        }
+      }
+      if (any) in_set_[v] = torch::tensor(std::vector<int64_t>(member.begin(), member.end()), torch::kInt64).to(torch::kBool);
+    }
+    std::vector<int64_t> sizes, strides;
+    int64_t stride = 1;
+    for (int k = static_cast<int>(model.inputs().size()) - 1; k >= 0; --k) {
+      sizes.insert(sizes.begin(), model.variable(model.inputs()[k]).domain.size());
+      strides.insert(strides.begin(), stride);
+      stride *= sizes.front();
+    }
+    input_sizes_ = torch::tensor(sizes, torch::kInt64);
+    input_strides_ = torch::tensor(strides, torch::kInt64);
+  }
+
+  // Input value indices [B, num_inputs] of input numbers [B].
+  Tensor Decode(const Tensor& numbers) const {
+    return torch::remainder(torch::floor_divide(numbers.unsqueeze(1), input_strides_), input_sizes_);
+  }
+
+  // Values of every variable (one [B] tensor per variable) for inputs [B, num_inputs]; with
+  // `source` and `set_index` given, the variables of each example's set take the source's values.
+  std::vector<Tensor> Values(const Tensor& inputs, const std::vector<Tensor>* source = nullptr,
+                             const Tensor* set_index = nullptr) const {
+    const int n = model_.num_variables();
+    std::vector<Tensor> cols(n);
+    for (size_t k = 0; k < model_.inputs().size(); ++k) cols[model_.inputs()[k]] = inputs.select(1, k);
+    for (int v : model_.topological_order()) {
+      const causal::Variable& var = model_.variable(v);
+      if (var.role == causal::Role::kInput) continue;
+      Tensor idx;
+      for (size_t p = 0; p < var.parents.size(); ++p) {
+        Tensor term = strides_[v][p] == 1 ? cols[var.parents[p]] : cols[var.parents[p]] * strides_[v][p];
+        idx = idx.defined() ? idx + term : term;
+      }
+      Tensor value = idx.defined() ? tables_[v].index_select(0, idx)
+                                   : tables_[v].expand({inputs.size(0)});
+      if (source != nullptr && in_set_[v].defined()) {
+        value = torch::where(in_set_[v].index_select(0, *set_index), (*source)[v], value);
+      }
+      cols[v] = value;
+    }
+    return cols;
+  }
+
+ private:
+  const causal::CausalModel& model_;
+  std::vector<Tensor> tables_;
+  std::vector<std::vector<int64_t>> strides_;
+  std::vector<Tensor> in_set_;
+  Tensor input_sizes_, input_strides_;
+};
+
+// ---------------------------------------------------------------------------------------------
+// The data stream: epochs over the training inputs in a shuffled order.
+
+class BatchStream {
+ public:
+  BatchStream(std::vector<int64_t> train, uint64_t seed) : order_(std::move(train)), rng_(seed, 0xDA7A) {
+    rng_.Shuffle(order_);
+  }
+  std::vector<int64_t> Next(int n) {
+    std::vector<int64_t> out;
+    out.reserve(n);
+    while (static_cast<int>(out.size()) < n) {
+      if (pos_ == order_.size()) {
+        rng_.Shuffle(order_);
+        pos_ = 0;
+      }
+      out.push_back(order_[pos_++]);
+    }
+    return out;
+  }
+  causal::Rng& rng() { return rng_; }
+  const std::vector<int64_t>& order() const { return order_; }
+  size_t pos() const { return pos_; }
+  void Restore(std::vector<int64_t> order, size_t pos) {
+    order_ = std::move(order);
+    pos_ = pos;
+  }
+
+ private:
+  std::vector<int64_t> order_;
+  size_t pos_ = 0;
+  causal::Rng rng_;
+};
+
+Tensor ToTensor(const std::vector<int64_t>& v) { return torch::tensor(v, torch::kInt64); }
+
+Tensor RngState(const causal::Rng& rng) {
+  auto s = rng.State();
+  std::vector<int64_t> v(s.begin(), s.end());
+  return ToTensor(v);
+}
+std::array<uint64_t, 4> ReadRngState(const Tensor& t) {
+  std::array<uint64_t, 4> s{};
+  auto a = t.accessor<int64_t, 1>();
+  for (int i = 0; i < 4; ++i) s[i] = static_cast<uint64_t>(a[i]);
+  return s;
+}
+
+json AccuracyJson(const eval::Accuracy& a) {
+  return json{{"value", a.value}, {"lo", a.lo}, {"hi", a.hi}, {"correct", a.correct}, {"n", a.n}};
+}
+
+absl::Status WriteText(const fs::path& path, const std::string& text) {
+  const fs::path tmp = path.string() + ".tmp";
+  {
+    std::ofstream out(tmp, std::ios::binary | std::ios::trunc);
+    if (!out) return absl::UnavailableError(absl::StrCat(tmp.string(), ": cannot write"));
+    out << text;
+    out.flush();
+    if (!out) return absl::UnavailableError(absl::StrCat(tmp.string(), ": write failed"));
+  }
+  std::error_code ec;
+  fs::rename(tmp, path, ec);
+  if (ec) return absl::UnavailableError(absl::StrCat(path.string(), ": ", ec.message()));
+  return absl::OkStatus();
+}
+
+// ---------------------------------------------------------------------------------------------
+// The job's training state.
+
+class Run {
+ public:
+  Run(const spec::ResolvedJob& job, const RunOptions& options)
+      : job_(job),
+        spec_(job.spec),
+        options_(options),
+        labels_(*job.model, job.sets),
+        stream_(job.split.train, job.spec.seed),
+        rng_(job.spec.seed, 0x1117) {}
+
+  absl::StatusOr<RunOutcome> Execute();
+
+ private:
+  void BuildNetwork();
+  void BuildSites();
+  void BuildEvaluation();
+  // One optimiser step; returns the two loss values.
+  std::pair<double, double> Step();
+  json Evaluate(int64_t step);
+  absl::Status SaveCheckpoint(int64_t step);
+  absl::Status LoadCheckpoint(const fs::path& path, int64_t* step);
+  absl::Status WriteWeights(const fs::path& path);
+  absl::Status WriteProbe();
+  json Provenance() const;
+  void Progress(int64_t step, bool final_line);
+
+  // Intervened logits for base inputs [B, I] and source inputs [B, I] with sets [B].
+  Tensor InterveneLogits(const Tensor& base_in, const Tensor& source_in, const Tensor& set_index,
+                         Tensor* base_logits);
+  net::InterventionMasks Masks(const Tensor& set_index) const;
+
+  const spec::ResolvedJob& job_;
+  const spec::JobSpec& spec_;
+  const RunOptions& options_;
+  LabelTables labels_;
+  BatchStream stream_;
+  causal::Rng rng_;  // sets, sources
+
+  net::Mlp net_{nullptr};
+  std::unique_ptr<torch::optim::Optimizer> optimizer_;
+  std::vector<Tensor> layer_masks_;  // per layer: [num_sets, width] bool, or undefined
+  int lowest_layer_ = -1, highest_layer_ = -1;
+
+  // Evaluation data, fixed for the whole run.
+  Tensor eval_train_, eval_test_;              // input numbers
+  Tensor triple_base_, triple_source_, triple_set_;
+
+  // Loss sums since the last evaluation.
+  double loss_task_sum_ = 0, loss_iit_sum_ = 0;
+  int64_t loss_count_ = 0;
+  double wall_before_ = 0;  // wall seconds of earlier attempts (resume)
+  std::chrono::steady_clock::time_point start_;
+  json last_eval_;
+  std::chrono::steady_clock::time_point last_progress_;
+  int64_t progress_step0_ = 0;
+};
+
+void Run::BuildNetwork() {
+  net::MlpOptions o;
+  const auto& model = *job_.model;
+  for (int i : model.inputs()) {
+    o.input_sizes.push_back(model.variable(i).domain.size());
+    o.input_names.push_back(model.variable(i).name);
+  }
+  o.embedding_dim = spec_.network.embedding_dim;
+  o.fixed_embedding = spec_.network.embedding_init == spec::EmbeddingInit::kFixedRandom;
+  o.hidden = spec_.network.hidden;
+  o.activation = static_cast<net::ActivationKind>(static_cast<int>(spec_.network.activation));
+  o.num_classes = model.variable(model.output()).domain.size();
+  torch::manual_seed(spec_.seed);
+  net_ = net::Mlp(o);
+  std::vector<Tensor> params;
+  for (auto& p : net_->parameters()) {
+    if (p.requires_grad()) params.push_back(p);
+  }
+  const auto& opt = spec_.training.optimizer;
+  if (opt.type == spec::OptimizerType::kAdam) {
+    optimizer_ = std::make_unique<torch::optim::Adam>(
+        params, torch::optim::AdamOptions(opt.lr).weight_decay(opt.weight_decay));
+  } else {
+    optimizer_ = std::make_unique<torch::optim::SGD>(
+        params, torch::optim::SGDOptions(opt.lr).momentum(opt.momentum).weight_decay(opt.weight_decay));
+  }
+}
+
+void Run::BuildSites() {
+  const int layers = static_cast<int>(spec_.network.hidden.size());
+  layer_masks_.assign(layers, Tensor());
+  const int num_sets = static_cast<int>(job_.sets.size());
+  for (int s = 0; s < num_sets; ++s) {
+    for (int v : job_.sets[s].variables) {
+      const spec::SiteSpec& site = spec_.alignment[job_.site_of_variable[v]];
+      Tensor& m = layer_masks_[site.layer];
+      if (!m.defined()) m = torch::zeros({num_sets, spec_.network.hidden[site.layer]}, torch::kBool);
+      for (int u : site.units) m[s][u] = true;
+      lowest_layer_ = lowest_layer_ < 0 ? site.layer : std::min(lowest_layer_, site.layer);
+      highest_layer_ = std::max(highest_layer_, site.layer);
+    }
+  }
+}
+
+void Run::BuildEvaluation() {
+  const int64_t cap = spec_.evaluation.triples;
+  auto pick = [&](const std::vector<int64_t>& inputs, uint64_t stream) {
+    if (static_cast<int64_t>(inputs.size()) <= cap) return ToTensor(inputs);
+    std::vector<int64_t> copy = inputs;
+    causal::Rng r(spec_.seed, stream);
+    r.Shuffle(copy);
+    copy.resize(cap);
+    std::sort(copy.begin(), copy.end());
+    return ToTensor(copy);
+  };
+  eval_train_ = pick(job_.split.train, 0xE1);
+  eval_test_ = pick(job_.split.test, 0xE2);
+  std::vector<causal::Triple> triples =
+      causal::MakeTriples(job_.split.test, static_cast<int>(job_.sets.size()), cap, spec_.seed);
+  std::vector<int64_t> b, s, z;
+  for (const auto& t : triples) {
+    b.push_back(t.base);
+    s.push_back(t.source);
+    z.push_back(t.set);
+  }
+  triple_base_ = ToTensor(b);
+  triple_source_ = ToTensor(s);
+  triple_set_ = ToTensor(z);
+}
+
+net::InterventionMasks Run::Masks(const Tensor& set_index) const {
+  net::InterventionMasks masks;
+  masks.lowest_layer = lowest_layer_;
+  masks.per_layer.resize(layer_masks_.size());
+  for (size_t l = 0; l < layer_masks_.size(); ++l) {
+    if (layer_masks_[l].defined()) masks.per_layer[l] = layer_masks_[l].index_select(0, set_index);
+  }
+  return masks;
+}
+
+Tensor Run::InterveneLogits(const Tensor& base_in, const Tensor& source_in, const Tensor& set_index,
+                            Tensor* base_logits) {
+  const int last = net_->num_layers() - 1;
+  std::vector<Tensor> base = net_->Hidden(net_->Embed(base_in), last);
+  if (base_logits) *base_logits = net_->Head(base.back());
+  if (lowest_layer_ < 0) return net_->Head(base.back());
+  std::vector<Tensor> source = net_->Hidden(net_->Embed(source_in), highest_layer_);
+  return net_->Intervened(base, source, Masks(set_index));
+}
+
+std::pair<double, double> Run::Step() {
+  const spec::TrainingSpec& t = spec_.training;
+  const int B = t.batch_size;
+  const int out = job_.model->output();
+  Tensor base_num = ToTensor(stream_.Next(B));
+  Tensor base_in = labels_.Decode(base_num);
+  std::vector<Tensor> base_vals = labels_.Values(base_in);
+  const int last = net_->num_layers() - 1;
+  std::vector<Tensor> acts = net_->Hidden(net_->Embed(base_in), last);
+  Tensor logits = net_->Head(acts.back());
+  Tensor loss_task = torch::nn::functional::cross_entropy(logits, base_vals[out]);
+  Tensor loss = loss_task * t.task_weight;
+  double iit_value = 0.0;
+  if (t.interchange_weight > 0 && lowest_layer_ >= 0) {
+    std::vector<int64_t> z(B), src(B);
+    const int num_sets = static_cast<int>(job_.sets.size());
+    for (int i = 0; i < B; ++i) z[i] = static_cast<int64_t>(rng_.Uniform(num_sets));
+    Tensor set_index = ToTensor(z);
+    std::vector<Tensor> source_acts(highest_layer_ + 1);
+    Tensor source_in;
+    if (t.sources == spec::SourceMode::kInBatch) {
+      std::vector<int64_t> perm(B);
+      for (int i = 0; i < B; ++i) perm[i] = i;
+      rng_.Shuffle(perm);
+      Tensor p = ToTensor(perm);
+      source_in = base_in.index_select(0, p);
+      for (int l = lowest_layer_; l <= highest_layer_; ++l) {
+        if (!layer_masks_[l].defined()) continue;
+        source_acts[l] = acts[l].index_select(0, p);
+        if (!t.source_gradients) source_acts[l] = source_acts[l].detach();
+      }
+    } else {
+      const auto& train = job_.split.train;
+      for (int i = 0; i < B; ++i) src[i] = train[rng_.Uniform(train.size())];
+      source_in = labels_.Decode(ToTensor(src));
+      if (t.source_gradients) {
+        source_acts = net_->Hidden(net_->Embed(source_in), highest_layer_);
+      } else {
+        torch::NoGradGuard no_grad;
+        source_acts = net_->Hidden(net_->Embed(source_in), highest_layer_);
+      }
+    }
+    std::vector<Tensor> source_vals = labels_.Values(source_in);
+    std::vector<Tensor> cf = labels_.Values(base_in, &source_vals, &set_index);
+    Tensor iit_logits = net_->Intervened(acts, source_acts, Masks(set_index));
+    Tensor loss_iit = torch::nn::functional::cross_entropy(iit_logits, cf[out]);
+    loss = loss + loss_iit * t.interchange_weight;
+    iit_value = loss_iit.item<double>();
+  }
+  const double task_value = loss_task.item<double>();
+  if (!std::isfinite(task_value) || !std::isfinite(iit_value)) {
+    return {task_value, iit_value};  // the caller stops; no update with a bad loss
+  }
+  optimizer_->zero_grad();
+  loss.backward();
+  optimizer_->step();
+  return {task_value, iit_value};
+}
+
+json Run::Evaluate(int64_t step) {
+  c10::InferenceMode guard;
+  const int out = job_.model->output();
+  auto task_accuracy = [&](const Tensor& numbers) {
+    Tensor in = labels_.Decode(numbers);
+    Tensor pred = net_->forward(in).argmax(1);
+    const int64_t correct = pred.eq(labels_.Values(in)[out]).sum().item<int64_t>();
+    return eval::WilsonAccuracy(correct, numbers.size(0));
+  };
+  json m;
+  m["step"] = step;
+  m["examples"] = step * spec_.training.batch_size;
+  const double wall = wall_before_ +
+                      std::chrono::duration<double>(std::chrono::steady_clock::now() - start_).count();
+  m["wall_s"] = wall;
+  if (loss_count_ > 0) {
+    m["loss_task"] = loss_task_sum_ / loss_count_;
+    m["loss_interchange"] = spec_.training.interchange_weight > 0 ? json(loss_iit_sum_ / loss_count_) : json(nullptr);
+  } else {
+    m["loss_task"] = nullptr;
+    m["loss_interchange"] = nullptr;
+  }
+  m["acc_train"] = AccuracyJson(task_accuracy(eval_train_));
+  m["acc_test"] = AccuracyJson(task_accuracy(eval_test_));
+
+  const int num_sets = static_cast<int>(job_.sets.size());
+  std::vector<int64_t> correct_by_set(num_sets, 0), n_by_set(num_sets, 0);
+  int64_t correct = 0, n = 0, changed_correct = 0, changed_n = 0, unchanged = 0;
+  const int64_t total = triple_base_.size(0);
+  const int64_t chunk = 8192;
+  for (int64_t at = 0; at < total; at += chunk) {
+    const int64_t len = std::min(chunk, total - at);
+    Tensor b_in = labels_.Decode(triple_base_.narrow(0, at, len));
+    Tensor s_in = labels_.Decode(triple_source_.narrow(0, at, len));
+    Tensor z = triple_set_.narrow(0, at, len);
+    Tensor pred = InterveneLogits(b_in, s_in, z, nullptr).argmax(1);
+    std::vector<Tensor> base_vals = labels_.Values(b_in);
+    std::vector<Tensor> src_vals = labels_.Values(s_in);
+    Tensor cf = labels_.Values(b_in, &src_vals, &z)[out];
+    Tensor ok = pred.eq(cf);
+    Tensor changed = cf.ne(base_vals[out]);
+    correct += ok.sum().item<int64_t>();
+    n += len;
+    changed_correct += (ok & changed).sum().item<int64_t>();
+    changed_n += changed.sum().item<int64_t>();
+    unchanged += len - changed.sum().item<int64_t>();
+    Tensor per_set_ok = torch::zeros({num_sets}, torch::kInt64).index_add_(0, z, ok.to(torch::kInt64));
+    Tensor per_set_n = torch::bincount(z, {}, num_sets);
+    for (int s = 0; s < num_sets; ++s) {
+      correct_by_set[s] += per_set_ok[s].item<int64_t>();
+      n_by_set[s] += per_set_n[s].item<int64_t>();
+    }
+  }
+  m["iia_test"] = AccuracyJson(eval::WilsonAccuracy(correct, n));
+  m["iia_changed_test"] = AccuracyJson(eval::WilsonAccuracy(changed_correct, changed_n));
+  json by_set = json::object();
+  for (int s = 0; s < num_sets; ++s) {
+    by_set[job_.sets[s].name] = AccuracyJson(eval::WilsonAccuracy(correct_by_set[s], n_by_set[s]));
+  }
+  m["iia_by_set"] = by_set;
+  m["unchanged_fraction"] = n > 0 ? static_cast<double>(unchanged) / static_cast<double>(n) : 0.0;
+  loss_task_sum_ = loss_iit_sum_ = 0;
+  loss_count_ = 0;
+  return m;
+}
+
+absl::Status Run::SaveCheckpoint(int64_t step) {
+  torch::serialize::OutputArchive archive;
+  for (const auto& item : net_->named_parameters(/*recurse=*/true)) archive.write("param." + item.key(), item.value());
+  for (const auto& item : net_->named_buffers(/*recurse=*/true)) archive.write("buffer." + item.key(), item.value());
+  torch::serialize::OutputArchive opt;
+  optimizer_->save(opt);
+  archive.write("optimizer", opt);
+  archive.write("step", torch::tensor(step, torch::kInt64));
+  archive.write("stream.order", ToTensor(stream_.order()));
+  archive.write("stream.pos", torch::tensor(static_cast<int64_t>(stream_.pos()), torch::kInt64));
+  archive.write("stream.rng", RngState(stream_.rng()));
+  archive.write("rng", RngState(rng_));
+  archive.write("loss.sums", torch::tensor({loss_task_sum_, loss_iit_sum_}, torch::kFloat64));
+  archive.write("loss.count", torch::tensor(loss_count_, torch::kInt64));
+  const double wall = wall_before_ +
+                      std::chrono::duration<double>(std::chrono::steady_clock::now() - start_).count();
+  archive.write("wall_s", torch::tensor(wall, torch::kFloat64));
+  const std::string hash = spec::SpecHash(spec_);
+  archive.write("spec_hash", c10::IValue(hash));
+  const fs::path path = fs::path(options_.out_dir) / "checkpoint.pt";
+  const fs::path tmp = path.string() + ".tmp";
+  try {
+    archive.save_to(tmp.string());
+  } catch (const c10::Error& e) {
+    return absl::UnavailableError(absl::StrCat(tmp.string(), ": cannot write checkpoint: ", e.what_without_backtrace()));
+  }
+  std::error_code ec;
+  fs::rename(tmp, path, ec);
+  if (ec) return absl::UnavailableError(absl::StrCat(path.string(), ": ", ec.message()));
+  return absl::OkStatus();
+}
+
+absl::Status Run::LoadCheckpoint(const fs::path& path, int64_t* step) {
+  torch::serialize::InputArchive archive;
+  try {
+    archive.load_from(path.string());
+    c10::IValue hash;
+    archive.read("spec_hash", hash);
+    if (hash.toStringRef() != spec::SpecHash(spec_)) {
+      return absl::InvalidArgumentError(absl::StrCat(
+          path.string(), ": this checkpoint belongs to a different spec (hash ", hash.toStringRef(),
+          ", this config resolves to ", spec::SpecHash(spec_), "); resume with the same config and --set values"));
+    }
+    torch::NoGradGuard no_grad;
+    for (auto& item : net_->named_parameters(true)) {
+      Tensor t;
+      archive.read("param." + item.key(), t);
+      item.value().copy_(t);
+    }
+    for (auto& item : net_->named_buffers(true)) {
+      Tensor t;
+      archive.read("buffer." + item.key(), t);
+      item.value().copy_(t);
+    }
+    torch::serialize::InputArchive opt;
+    archive.read("optimizer", opt);
+    optimizer_->load(opt);
+    Tensor t;
+    archive.read("step", t);
+    *step = t.item<int64_t>();
+    Tensor order, pos, srng, rng;
+    archive.read("stream.order", order);
+    archive.read("stream.pos", pos);
+    archive.read("stream.rng", srng);
+    archive.read("rng", rng);
+    std::vector<int64_t> ord(order.data_ptr<int64_t>(), order.data_ptr<int64_t>() + order.numel());
+    stream_.Restore(std::move(ord), static_cast<size_t>(pos.item<int64_t>()));
+    stream_.rng().SetState(ReadRngState(srng));
+    rng_.SetState(ReadRngState(rng));
+    Tensor sums, count, wall;
+    archive.read("loss.sums", sums);
+    archive.read("loss.count", count);
+    archive.read("wall_s", wall);
+    loss_task_sum_ = sums[0].item<double>();
+    loss_iit_sum_ = sums[1].item<double>();
+    loss_count_ = count.item<int64_t>();
+    wall_before_ = wall.item<double>();
+  } catch (const c10::Error& e) {
+    return absl::DataLossError(absl::StrCat(path.string(), ": cannot read checkpoint: ", e.what_without_backtrace()));
+  }
+  return absl::OkStatus();
+}
+
+absl::Status Run::WriteWeights(const fs::path& path) {
+  c10::Dict<std::string, Tensor> dict;
+  for (const auto& [name, tensor] : net_->NamedExport()) dict.insert(name, tensor.detach().clone().contiguous());
+  std::vector<char> bytes = torch::pickle_save(c10::IValue(dict));
+  return WriteText(path, std::string(bytes.begin(), bytes.end()));
+}
+
+absl::Status Run::WriteProbe() {
+  c10::InferenceMode guard;
+  const int64_t n = std::min<int64_t>(options_.probe_triples, triple_base_.size(0));
+  Tensor b_in = labels_.Decode(triple_base_.narrow(0, 0, n));
+  Tensor s_in = labels_.Decode(triple_source_.narrow(0, 0, n));
+  Tensor z = triple_set_.narrow(0, 0, n);
+  Tensor base_logits;
+  Tensor iit = InterveneLogits(b_in, s_in, z, &base_logits);
+  json j;
+  const auto& model = *job_.model;
+  j["inputs"] = json::array();
+  for (int i : model.inputs()) j["inputs"].push_back(model.variable(i).name);
+  j["sets"] = json::array();
+  for (const auto& s : job_.sets) {
+    json vars = json::array();
+    for (int v : s.variables) vars.push_back(model.variable(v).name);
+    j["sets"].push_back(json{{"name", s.name}, {"variables", vars}});
+  }
+  auto rows = [](const Tensor& t) {
+    json out = json::array();
+    auto a = t.accessor<int64_t, 2>();
+    for (int64_t r = 0; r < t.size(0); ++r) {
+      json row = json::array();
+      for (int64_t c = 0; c < t.size(1); ++c) row.push_back(a[r][c]);
+      out.push_back(row);
+    }
+    return out;
+  };
+  auto frows = [](const Tensor& t) {
+    json out = json::array();
+    Tensor d = t.to(torch::kFloat64).contiguous();
+    auto a = d.accessor<double, 2>();
+    for (int64_t r = 0; r < d.size(0); ++r) {
+      json row = json::array();
+      for (int64_t c = 0; c < d.size(1); ++c) row.push_back(a[r][c]);
+      out.push_back(row);
+    }
+    return out;
+  };
+  json bases = rows(b_in), sources = rows(s_in);
+  j["triples"] = json::array();
+  for (int64_t r = 0; r < n; ++r) {
+    j["triples"].push_back(json{{"base", bases[r]}, {"source", sources[r]}, {"set", job_.sets[z[r].item<int64_t>()].name}});
+  }
+  j["base_logits"] = frows(base_logits);
+  j["intervened_logits"] = frows(iit);
+  return WriteText(options_.probe_path, j.dump(1) + "\n");
+}
+
+json Run::Provenance() const {
+  json p;
+  p["graft_version"] = GRAFT_VERSION;
+  p["graft_commit"] = GRAFT_COMMIT;
+  p["libtorch_version"] = absl::StrCat(TORCH_VERSION_MAJOR, ".", TORCH_VERSION_MINOR, ".", TORCH_VERSION_PATCH);
+  p["blas_library"] = BlasLibrary();
+  auto get = reinterpret_cast<BlasGetThreads>(dlsym(RTLD_DEFAULT, "openblas_get_num_threads"));
+  p["blas_threads"] = get ? get() : -1;
+  p["torch_threads"] = torch::get_num_threads();
+  p["threads"] = spec_.training.threads;
+  p["cpu_model"] = CpuModel();
+  p["spec_hash"] = spec::SpecHash(spec_);
+  return p;
+}
+
+void Run::Progress(int64_t step, bool final_line) {
+  if (options_.progress == nullptr) return;
+  const auto now = std::chrono::steady_clock::now();
+  const double elapsed = std::chrono::duration<double>(now - start_).count();
+  const double rate = elapsed > 0 ? static_cast<double>(step - progress_step0_) * spec_.training.batch_size / elapsed : 0;
+  const double steps_per_s = elapsed > 0 ? static_cast<double>(step - progress_step0_) / elapsed : 0;
+  const double eta = steps_per_s > 0 ? static_cast<double>(spec_.training.steps - step) / steps_per_s : 0;
+  std::ostringstream line;
+  line << "step " << step << "/" << spec_.training.steps << "  " << std::fixed << std::setprecision(0) << rate
+       << " ex/s";
+  if (!last_eval_.is_null()) {
+    line << std::setprecision(3) << "  acc_test " << last_eval_["acc_test"]["value"].get<double>() << "  iia_test "
+         << last_eval_["iia_test"]["value"].get<double>() << " (changed "
+         << last_eval_["iia_changed_test"]["value"].get<double>() << ")";
+  }
+  line << std::setprecision(0) << "  eta " << eta << "s";
+  if (options_.progress_is_terminal) {
+    *options_.progress << "\r\033[K" << line.str() << (final_line ? "\n" : "") << std::flush;
+  } else {
+    *options_.progress << line.str() << "\n" << std::flush;
+  }
+  last_progress_ = now;
+}
+
+absl::StatusOr<RunOutcome> Run::Execute() {
+  const spec::TrainingSpec& t = spec_.training;
+  torch::set_num_threads(t.threads);
+  SetBlasThreads(t.threads);
+  const fs::path out(options_.out_dir);
+  std::error_code ec;
+  fs::create_directories(out, ec);
+  if (ec) return absl::UnavailableError(absl::StrCat(out.string(), ": cannot create: ", ec.message()));
+
+  BuildNetwork();
+  BuildSites();
+  BuildEvaluation();
+  start_ = std::chrono::steady_clock::now();
+  last_progress_ = start_;
+
+  int64_t step = 0;
+  std::vector<std::string> metric_lines;
+  if (!options_.resume_dir.empty()) {
+    const fs::path from(options_.resume_dir);
+    absl::Status st = LoadCheckpoint(from / "checkpoint.pt", &step);
+    if (!st.ok()) return st;
+    // Keep the evaluations up to the checkpoint; later ones are recomputed.
+    std::ifstream in(from / "metrics.jsonl");
+    std::string line;
+    while (std::getline(in, line)) {
+      if (line.empty()) continue;
+      json m = json::parse(line, nullptr, /*allow_exceptions=*/false);
+      if (m.is_discarded()) break;  // a torn last line from a crash
+      if (m["step"].get<int64_t>() > step) break;
+      metric_lines.push_back(line);
+      last_eval_ = m;
+    }
+    progress_step0_ = step;
+  }
+  absl::Status st = WriteText(out / "spec.yaml", spec::ResolvedSpecYaml(spec_));
+  if (!st.ok()) return st;
+  std::ofstream metrics(out / "metrics.jsonl.tmp", std::ios::trunc);
+  for (const auto& l : metric_lines) metrics << l << "\n";
+  metrics.flush();
+  fs::rename(out / "metrics.jsonl.tmp", out / "metrics.jsonl", ec);
+  metrics.close();
+  std::ofstream metrics_out(out / "metrics.jsonl", std::ios::app);
+  if (!metrics_out) return absl::UnavailableError(absl::StrCat((out / "metrics.jsonl").string(), ": cannot write"));
+
+  auto emit = [&](int64_t s) {
+    last_eval_ = Evaluate(s);
+    metrics_out << last_eval_.dump() << "\n" << std::flush;
+  };
+  if (step == 0) emit(0);
+  int64_t last_checkpoint = step;
+  RunOutcome outcome;
+  while (step < t.steps) {
+    if (options_.stop_requested != nullptr && options_.stop_requested->load()) {
+      st = SaveCheckpoint(step);
+      if (!st.ok()) return st;
+      outcome.kind = RunOutcome::Kind::kInterrupted;
+      outcome.step = step;
+      Progress(step, true);
+      return outcome;
+    }
+    auto [task_loss, iit_loss] = Step();
+    if (!std::isfinite(task_loss) || !std::isfinite(iit_loss)) {
+      return absl::InternalError(absl::StrCat("the loss became ", std::isfinite(task_loss) ? iit_loss : task_loss,
+                                              " at step ", step + 1, " (task ", task_loss, ", interchange ", iit_loss,
+                                              "); stopped without that update; the last good checkpoint is step ",
+                                              last_checkpoint, " in ", (out / "checkpoint.pt").string(),
+                                              "; try a lower training.optimizer.lr"));
+    }
+    ++step;
+    loss_task_sum_ += task_loss;
+    loss_iit_sum_ += iit_loss;
+    ++loss_count_;
+    if (step % spec_.evaluation.every == 0 || step == t.steps) emit(step);
+    if (step % t.checkpoint_every == 0 || step == t.steps || step == options_.stop_after_step) {
+      st = SaveCheckpoint(step);
+      if (!st.ok()) return st;
+      last_checkpoint = step;
+    }
+    if (step == options_.stop_after_step && step < t.steps) {
+      outcome.kind = RunOutcome::Kind::kInterrupted;
+      outcome.step = step;
+      Progress(step, true);
+      return outcome;
+    }
+    const auto now = std::chrono::steady_clock::now();
+    if (options_.progress_is_terminal ? std::chrono::duration<double>(now - last_progress_).count() > 0.5
+                                      : step % spec_.evaluation.every == 0) {
+      Progress(step, false);
+    }
+  }
+  if (options_.progress_is_terminal || step % spec_.evaluation.every != 0) Progress(step, true);
+  const double seconds = wall_before_ + std::chrono::duration<double>(std::chrono::steady_clock::now() - start_).count();
+  json result = last_eval_;
+  result["steps"] = step;
+  result["seconds"] = seconds;
+  result["examples_per_s"] = seconds > 0 ? static_cast<double>(step) * t.batch_size / seconds : 0.0;
+  result["peak_rss_mb"] = PeakRssMb();
+  result["provenance"] = Provenance();
+  st = WriteWeights(out / "weights.pt");
+  if (!st.ok()) return st;
+  st = WriteText(out / "result.json", result.dump(2) + "\n");
+  if (!st.ok()) return st;
+  if (!options_.probe_path.empty()) {
+    st = WriteProbe();
+    if (!st.ok()) return st;
+  }
+  outcome.step = step;
+  return outcome;
+}
+
+}  // namespace
+
+absl::StatusOr<RunOutcome> Train(const spec::ResolvedJob& job, const RunOptions& options) {
+  try {
+    Run run(job, options);
+    return run.Execute();
+  } catch (const c10::Error& e) {
+    return absl::InternalError(absl::StrCat("LibTorch: ", e.what_without_backtrace()));
+  } catch (const std::exception& e) {
+    return absl::InternalError(e.what());
+  }
+}
+
+}  // namespace graft::train
