@@ -177,6 +177,29 @@ TEST(SpecErrors, YamlSyntax) {
   EXPECT_ERROR(ErrorOf(Replace(kBase, "  type: mlp", " type: mlp\n  bad")), "job.yaml:", "YAML syntax");
 }
 
+TEST(SpecErrors, UnquotedNotIsAYamlTagAndSaysToQuote) {
+  EXPECT_ERROR(ErrorOf(Replace(kBase, "careful: weight == heavy || weight == oversize || fragile",
+                               "careful: !fragile")),
+               "job.yaml:11:14:", "an expression starting with '!' must be quoted");
+  EXPECT_EQ(ErrorOf(Replace(kBase, "careful: weight == heavy || weight == oversize || fragile",
+                            "careful: \"!fragile\"")),
+            "");
+}
+
+TEST(SpecErrors, OutputWithOneValue) {
+  EXPECT_ERROR(ErrorOf(Replace(kBase, "route: {expr: \"2*local + careful\", classes: [van, truck, bike, courier]}",
+                               "route: \"local * 0\"")),
+               "job.yaml:13:13:", "the output 'route' takes only one value");
+}
+
+TEST(Spec, ResolvedSpecEscapesQuotesInText) {
+  auto job = LoadJobFromText(kBase, "job.yaml", {"name='odd \"name\" \\ here'"});
+  ASSERT_OK(job);
+  auto again = LoadJobFromText(ResolvedSpecYaml(job->spec), "spec.yaml", {});
+  ASSERT_OK(again);
+  EXPECT_EQ(again->spec.name, "odd \"name\" \\ here");
+}
+
 TEST(SpecErrors, CycleIsNamed) {
   std::string text = Replace(kBase, "local:   origin == dest", "local:   origin == dest && careful");
   text = Replace(text, "|| fragile", "|| local");

@@ -372,8 +372,11 @@ absl::StatusOr<std::unique_ptr<CausalModel>> CausalModel::Create(
       v.table[j] = idx;
     }
   }
-  if (m->vars_[m->output_].domain.size() < 2 && decls[m->output_].domain) {
-    return Fail(error, m->output_, Part::kDomain, 0, "the output needs at least two classes");
+  if (m->vars_[m->output_].domain.size() < 2) {
+    return Fail(error, m->output_, decls[m->output_].domain ? Part::kDomain : Part::kExpression, 0,
+                absl::StrCat("the output '", decls[m->output_].name, "' ",
+                             decls[m->output_].domain ? "lists" : "takes", " only one value; a classifier needs at "
+                             "least two classes"));
   }
 
   // Ancestors.

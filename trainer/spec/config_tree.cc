@@ -42,6 +42,12 @@ class TreeBuilder : public YAML::EventHandler {
   }
   void OnScalar(const YAML::Mark& mark, const std::string& tag, YAML::anchor_t anchor,
                 const std::string& value) override {
+    if (!tag.empty() && tag != "?" && tag != "!") {
+      // `careful: !fragile` reads as the YAML tag "!fragile", not as an expression.
+      Fail(mark, absl::StrCat("YAML tag '", tag, "' is not supported; an expression starting with '!' must be "
+                              "quoted, e.g. \"!fragile\""));
+      return;
+    }
     ConfigNode n;
     n.kind = ConfigNode::Kind::kScalar;
     n.scalar = value;
@@ -53,16 +59,18 @@ class TreeBuilder : public YAML::EventHandler {
     }
     Add(std::move(n), anchor);
   }
-  void OnSequenceStart(const YAML::Mark& mark, const std::string&, YAML::anchor_t anchor,
+  void OnSequenceStart(const YAML::Mark& mark, const std::string& tag, YAML::anchor_t anchor,
                        YAML::EmitterStyle::value) override {
+    CheckTag(mark, tag);
     ConfigNode n;
     n.kind = ConfigNode::Kind::kSequence;
     n.loc = Loc(mark);
     stack_.push_back(Open{std::move(n), anchor, {}, false});
   }
   void OnSequenceEnd() override { Close(); }
-  void OnMapStart(const YAML::Mark& mark, const std::string&, YAML::anchor_t anchor,
+  void OnMapStart(const YAML::Mark& mark, const std::string& tag, YAML::anchor_t anchor,
                   YAML::EmitterStyle::value) override {
+    CheckTag(mark, tag);
     ConfigNode n;
     n.kind = ConfigNode::Kind::kMap;
     n.loc = Loc(mark);
@@ -83,6 +91,11 @@ class TreeBuilder : public YAML::EventHandler {
     bool has_key;
   };
 
+  void CheckTag(const YAML::Mark& mark, const std::string& tag) {
+    if (!tag.empty() && tag != "?" && tag != "!") {
+      Fail(mark, absl::StrCat("YAML tag '", tag, "' is not supported in a graft config"));
+    }
+  }
   Location Loc(const YAML::Mark& mark) const {
     return Location{source_, mark.line + 1, mark.column + 1 + column_offset_};
   }
@@ -141,12 +154,13 @@ class TreeBuilder : public YAML::EventHandler {
   absl::Status status_;
 };
 
+// A scalar as YAML text: quoted scalars (and any text YAML would misread) are written
+// double-quoted with escapes, by yaml-cpp's emitter.
 std::string QuoteIfNeeded(const ConfigNode& n) {
   YAML::Emitter e;
+  if (n.quoted) e << YAML::DoubleQuoted;
   e << n.scalar;
-  std::string plain = e.c_str();
-  if (n.quoted && (plain.empty() || plain[0] != '"')) return absl::StrCat("\"", n.scalar, "\"");
-  return plain;
+  return e.c_str();
 }
 
 void Emit(const ConfigNode& n, int indent, std::ostringstream& out, bool inline_start);

@@ -46,7 +46,7 @@ struct ConfigNode {
 
 // Parses one YAML document. Errors (syntax, duplicate keys, more than one document) come back
 // as InvalidArgument "SOURCE:LINE:COL: message". `source` names the text in locations;
-// `line_offset`/`column_offset` shift the reported positions (for --set values).
+// `column_offset` shifts the reported columns (for --set values, which start after "key=").
 absl::StatusOr<ConfigNode> ParseYaml(const std::string& text, const std::string& source,
                                      int column_offset = 0);
 

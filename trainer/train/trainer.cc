@@ -35,7 +35,7 @@ namespace graft::train {
 namespace {
 
 namespace fs = std::filesystem;
-using json = nlohmann::json;
+using json = nlohmann::ordered_json;  // keys in the order written
 using torch::Tensor;
 
 // ---------------------------------------------------------------------------------------------
