@@ -97,6 +97,8 @@ json WithoutTimings(json j) {
   j.erase("seconds");
   j.erase("examples_per_s");
   j.erase("peak_rss_mb");
+  j.erase("first_step_s");
+  j.erase("step_seconds");
   if (j.contains("provenance")) j["provenance"].erase("graft_commit");
   return j;
 }

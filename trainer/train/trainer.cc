@@ -3,6 +3,7 @@
 #include <dlfcn.h>
 #include <link.h>
 #include <sys/resource.h>
+#include <unistd.h>
 
 #include <algorithm>
 #include <chrono>
@@ -82,6 +83,26 @@ std::string CpuModel() {
     }
   }
   return "unknown";
+}
+
+// Seconds since this process started (from /proc: start time in clock ticks after boot, and
+// the system uptime), resolution one clock tick (10 ms).
+double ProcessAgeSeconds() {
+  std::ifstream stat("/proc/self/stat");
+  std::string text((std::istreambuf_iterator<char>(stat)), std::istreambuf_iterator<char>());
+  const size_t close = text.rfind(')');
+  if (close == std::string::npos) return -1;
+  std::istringstream fields(text.substr(close + 2));
+  std::string field;
+  // Fields after the command name start at field 3 (state); starttime is field 22.
+  for (int i = 3; i < 22 && fields >> field; ++i) {
+  }
+  unsigned long long start_ticks = 0;
+  if (!(fields >> start_ticks)) return -1;
+  std::ifstream up("/proc/uptime");
+  double uptime = 0;
+  if (!(up >> uptime)) return -1;
+  return uptime - static_cast<double>(start_ticks) / static_cast<double>(sysconf(_SC_CLK_TCK));
 }
 
 double PeakRssMb() {
@@ -290,6 +311,8 @@ class Run {
   json last_eval_;
   std::chrono::steady_clock::time_point last_progress_;
   int64_t progress_step0_ = 0;
+  double first_step_s_ = -1;  // process age when the first step of this process began
+  double step_seconds_ = 0;   // time inside training steps in this process (no evaluation)
 };
 
 void Run::BuildNetwork() {
@@ -745,7 +768,10 @@ absl::StatusOr<RunOutcome> Run::Execute() {
       Progress(step, true);
       return outcome;
     }
+    if (first_step_s_ < 0) first_step_s_ = ProcessAgeSeconds();
+    const auto step_start = std::chrono::steady_clock::now();
     auto [task_loss, iit_loss] = Step();
+    step_seconds_ += std::chrono::duration<double>(std::chrono::steady_clock::now() - step_start).count();
     if (!std::isfinite(task_loss) || !std::isfinite(iit_loss)) {
       return absl::InternalError(absl::StrCat("the loss became ", std::isfinite(task_loss) ? iit_loss : task_loss,
                                               " at step ", step + 1, " (task ", task_loss, ", interchange ", iit_loss,
@@ -782,6 +808,8 @@ absl::StatusOr<RunOutcome> Run::Execute() {
   result["seconds"] = seconds;
   result["examples_per_s"] = seconds > 0 ? static_cast<double>(step) * t.batch_size / seconds : 0.0;
   result["peak_rss_mb"] = PeakRssMb();
+  result["first_step_s"] = first_step_s_;
+  result["step_seconds"] = step_seconds_;
   result["provenance"] = Provenance();
   st = WriteWeights(out / "weights.pt");
   if (!st.ok()) return st;
