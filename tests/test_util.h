@@ -3,6 +3,7 @@
 #ifndef GRAFT_TESTS_TEST_UTIL_H_
 #define GRAFT_TESTS_TEST_UTIL_H_
 
+#include <functional>
 #include <string>
 #include <vector>
 
@@ -50,6 +51,33 @@ struct CommandResult {
 
 // Runs `command` with /bin/sh -c, capturing stdout and stderr. REQUIRES: the command ends.
 CommandResult RunCommand(const std::string& command);
+
+// A child process started with posix_spawn, its stdout and stderr appended to a log file.
+// Killed (SIGKILL) and reaped on destruction if still running.
+class ScopedProcess {
+ public:
+  ScopedProcess(const std::vector<std::string>& argv, const std::string& log_path);
+  ~ScopedProcess();
+  ScopedProcess(const ScopedProcess&) = delete;
+  ScopedProcess& operator=(const ScopedProcess&) = delete;
+  int pid() const { return pid_; }
+  bool started() const { return pid_ > 0; }
+  // Sends `signal`; returns false if the process is gone.
+  bool Signal(int signal);
+  // Waits up to `timeout_ms` for the process to exit; returns its exit code (128 + signal when
+  // killed), or -1 on timeout.
+  int Wait(int timeout_ms);
+  const std::string& log_path() const { return log_path_; }
+
+ private:
+  int pid_ = -1;
+  bool reaped_ = false;
+  int exit_code_ = -1;
+  std::string log_path_;
+};
+
+// Polls `condition` every 20 ms until it holds or `timeout_ms` passes; returns whether it held.
+bool WaitFor(const std::function<bool()>& condition, int timeout_ms);
 
 // Writes `contents` to `path`, replacing it. Fails the current test on error.
 void WriteFile(const std::string& path, const std::string& contents);

@@ -19,6 +19,7 @@ Usage (from anywhere; run with /usr/bin/python3):
 import argparse
 import json
 import os
+import resource
 import shlex
 import statistics
 import subprocess
@@ -43,15 +44,31 @@ GRAFT_VARIANTS = [
 BATCH, INPUTS, EMBED_DIM, CLASSES, SITE = 256, 4, 8, 4, 1
 
 
+def machine_busy_s():
+    """CPU seconds spent by the whole machine (all cores, all processes) since boot."""
+    with open("/proc/stat") as f:
+        fields = [int(x) for x in f.readline().split()[1:]]
+    user, nice, system, idle, iowait, irq, softirq, steal = (fields + [0] * 8)[:8]
+    return (user + nice + system + irq + softirq + steal) / os.sysconf("SC_CLK_TCK")
+
+
+def children_cpu_s():
+    ru = resource.getrusage(resource.RUSAGE_CHILDREN)
+    return ru.ru_utime + ru.ru_stime
+
+
 def run_timed(cmd, log_path):
+    """Returns (wall seconds, CPU seconds used by other processes meanwhile)."""
     env = dict(os.environ, **ENV_SET)
     with open(log_path, "w") as log:
+        busy0, own0 = machine_busy_s(), children_cpu_s()
         t0 = time.perf_counter()
         proc = subprocess.run(cmd, env=env, stdout=log, stderr=subprocess.STDOUT, cwd=REPO)
         wall = time.perf_counter() - t0
+        foreign = (machine_busy_s() - busy0) - (children_cpu_s() - own0)
     if proc.returncode != 0:
         sys.exit(f"command failed with exit code {proc.returncode} (log {log_path}):\n  {shown(cmd)}")
-    return wall
+    return wall, max(0.0, foreign)
 
 
 def shown(cmd):
@@ -124,10 +141,12 @@ def main():
 
     print(f"# graft vs eager PyTorch, hidden {widths}, {steps} steps, batch {BATCH}, {args.pairs} rounds")
     print(f"# work dir {work}; load average before: {load_average()}")
-    print("# measured runs, in order (wall = whole process, timed by this script):")
+    print("# measured runs, in order (wall = whole process, timed by this script; other CPU ="
+          " machine-wide busy CPU seconds during the run minus the run's own)")
     walls = {name: [] for name, _ in GRAFT_VARIANTS}
     walls["eager"] = []
     results = {name: [] for name in walls}
+    foreign_all = []
     for r in range(args.pairs):
         order = [GRAFT_VARIANTS[0], ("eager", None)] + GRAFT_VARIANTS[1:]
         for name, extra in order:
@@ -138,12 +157,15 @@ def main():
             else:
                 out = os.path.join(work, tag)
                 cmd = graft_common + ["--out", out] + graft_extra + extra
-            wall = run_timed(cmd, os.path.join(work, tag + ".log"))
+            wall, foreign = run_timed(cmd, os.path.join(work, tag + ".log"))
+            foreign_all.append(foreign)
             walls[name].append(wall)
             with open(out if extra is None else os.path.join(out, "result.json")) as f:
                 results[name].append(json.load(f))
-            print(f"  round {r} {name:40} {wall:8.2f} s  $ {shown(cmd)}", flush=True)
-    print(f"# load average after: {load_average()}")
+            print(f"  round {r} {name:40} {wall:8.2f} s  other CPU {foreign:5.2f} s  $ {shown(cmd)}",
+                  flush=True)
+    print(f"# load average after: {load_average()}; CPU seconds used by other processes during the"
+          f" measured runs: total {sum(foreign_all):.2f}, max in one run {max(foreign_all):.2f}")
 
     eager_walls = walls["eager"]
     eager_loop = [res["train_loop_s"] for res in results["eager"]]
@@ -165,6 +187,8 @@ def main():
         p = results[name][0]["provenance"]
         print(f"graft: blas_library {p['blas_library']}; blas_threads {p['blas_threads']};"
               f" torch_threads {p['torch_threads']}; libtorch {p['libtorch_version']}; cpu {p['cpu_model']}")
+        commits = sorted({res["provenance"]["graft_commit"] for v, _ in GRAFT_VARIANTS for res in results[v]})
+        print(f"graft: graft_commit {', '.join(commits)} (over all graft runs); binary {GRAFT}")
     e = results["eager"][0]
     print(f"eager: loaded {e['blas_library']}; {e['blas_info'].strip('- ')}; torch_threads"
           f" {e['torch_threads']}; torch {e['torch_version']}")

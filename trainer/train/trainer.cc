@@ -313,6 +313,7 @@ class Run {
   int64_t progress_step0_ = 0;
   double first_step_s_ = -1;  // process age when the first step of this process began
   double step_seconds_ = 0;   // time inside training steps in this process (no evaluation)
+  int threads_ = 1;           // effective threads of this process
 };
 
 void Run::BuildNetwork() {
@@ -678,7 +679,7 @@ json Run::Provenance() const {
   auto get = reinterpret_cast<BlasGetThreads>(dlsym(RTLD_DEFAULT, "openblas_get_num_threads"));
   p["blas_threads"] = get ? get() : -1;
   p["torch_threads"] = torch::get_num_threads();
-  p["threads"] = spec_.training.threads;
+  p["threads"] = threads_;
   p["cpu_model"] = CpuModel();
   p["spec_hash"] = spec::SpecHash(spec_);
   return p;
@@ -710,8 +711,9 @@ void Run::Progress(int64_t step, bool final_line) {
 
 absl::StatusOr<RunOutcome> Run::Execute() {
   const spec::TrainingSpec& t = spec_.training;
-  torch::set_num_threads(t.threads);
-  SetBlasThreads(t.threads);
+  threads_ = options_.max_threads > 0 ? std::min(t.threads, options_.max_threads) : t.threads;
+  torch::set_num_threads(threads_);
+  SetBlasThreads(threads_);
   const fs::path out(options_.out_dir);
   std::error_code ec;
   fs::create_directories(out, ec);
@@ -754,7 +756,9 @@ absl::StatusOr<RunOutcome> Run::Execute() {
 
   auto emit = [&](int64_t s) {
     last_eval_ = Evaluate(s);
-    metrics_out << last_eval_.dump() << "\n" << std::flush;
+    const std::string line = last_eval_.dump();
+    metrics_out << line << "\n" << std::flush;
+    if (options_.on_evaluation) options_.on_evaluation(s, line);
   };
   if (step == 0) emit(0);
   int64_t last_checkpoint = step;
@@ -763,6 +767,7 @@ absl::StatusOr<RunOutcome> Run::Execute() {
     if (options_.stop_requested != nullptr && options_.stop_requested->load()) {
       st = SaveCheckpoint(step);
       if (!st.ok()) return st;
+      if (options_.on_checkpoint) options_.on_checkpoint(step);
       outcome.kind = RunOutcome::Kind::kInterrupted;
       outcome.step = step;
       Progress(step, true);
@@ -788,7 +793,9 @@ absl::StatusOr<RunOutcome> Run::Execute() {
       st = SaveCheckpoint(step);
       if (!st.ok()) return st;
       last_checkpoint = step;
+      if (options_.on_checkpoint) options_.on_checkpoint(step);
     }
+    if (options_.on_step) options_.on_step(step);
     if (step == options_.stop_after_step && step < t.steps) {
       outcome.kind = RunOutcome::Kind::kInterrupted;
       outcome.step = step;

@@ -8,6 +8,7 @@
 
 #include <atomic>
 #include <cstdint>
+#include <functional>
 #include <ostream>
 #include <string>
 
@@ -33,6 +34,16 @@ struct RunOptions {
   // intervened logits, so an independent implementation can recompute them.
   std::string probe_path;
   int probe_triples = 64;
+  // Called after each evaluation with its metrics.jsonl line (no newline), after the line is
+  // written. The worker's serve loop reports it to the coordinator.
+  std::function<void(int64_t step, const std::string& metrics_line)> on_evaluation;
+  // Called after each checkpoint.pt is written (atomically) into out_dir.
+  std::function<void(int64_t step)> on_checkpoint;
+  // Called after every step (cheap; for progress reports).
+  std::function<void(int64_t step)> on_step;
+  // > 0: use at most this many threads (torch and BLAS), even if training.threads asks for more.
+  // Does not change the spec (a checkpoint made with fewer threads still resumes).
+  int max_threads = 0;
 };
 
 struct RunOutcome {

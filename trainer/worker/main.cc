@@ -9,6 +9,7 @@
 
 #include "CLI/CLI.hpp"
 #include "trainer/worker/commands.h"
+#include "trainer/worker/serve.h"
 
 namespace {
 // Set by SIGINT/SIGTERM; the trainer checkpoints and stops at the next step boundary.
@@ -38,6 +39,13 @@ int main(int argc, char** argv) {
   run->add_option("--probe", run_args.probe_path,
                   "Also write the first evaluation triples with base and intervened logits to this JSON file");
 
+  graft::worker::ServeArgs serve_args;
+  CLI::App* serve = app.add_subcommand("serve", "Lease jobs from a coordinator and train them, one at a time");
+  serve->add_option("--server", serve_args.server, "coordinator host:port (default 127.0.0.1:7070)");
+  serve->add_option("--token-file", serve_args.token_file, "file holding this worker's token")->required();
+  serve->add_option("--threads", serve_args.threads, "at most this many threads per job (default 1)");
+  serve->add_option("--work-dir", serve_args.work_dir, "scratch directory for run directories");
+
   try {
     app.parse(argc, argv);
   } catch (const CLI::ParseError& e) {
@@ -50,6 +58,11 @@ int main(int argc, char** argv) {
     std::signal(SIGINT, OnStopSignal);
     std::signal(SIGTERM, OnStopSignal);
     return graft::worker::RunCommand(run_args, &stop_requested, std::cout, std::cerr, isatty(STDERR_FILENO) == 1);
+  }
+  if (serve->parsed()) {
+    std::signal(SIGINT, OnStopSignal);
+    std::signal(SIGTERM, OnStopSignal);
+    return graft::worker::ServeCommand(serve_args, &stop_requested, std::cerr);
   }
   return graft::worker::kExitFailure;
 }

@@ -1,0 +1,750 @@
+#include "server/coordinator.h"
+
+#include <algorithm>
+#include <chrono>
+#include <cstdio>
+#include <filesystem>
+
+#include "absl/status/status.h"
+#include "absl/strings/str_cat.h"
+#include "spdlog/spdlog.h"
+#include "trainer/spec/spec.h"
+
+namespace graft::server {
+namespace {
+
+namespace fs = std::filesystem;
+
+class SystemClock : public Clock {
+ public:
+  int64_t NowMs() override {
+    return std::chrono::duration_cast<std::chrono::milliseconds>(
+               std::chrono::system_clock::now().time_since_epoch())
+        .count();
+  }
+};
+
+const char* const kArtifactNames[] = {"checkpoint.pt", "weights.pt", "result.json", "metrics.jsonl", "spec.yaml"};
+
+bool IsArtifactName(const std::string& name) {
+  for (const char* n : kArtifactNames) {
+    if (name == n) return true;
+  }
+  return false;
+}
+
+std::string HexDigest(EVP_MD_CTX* ctx) {
+  unsigned char digest[EVP_MAX_MD_SIZE];
+  unsigned int len = 0;
+  EVP_DigestFinal_ex(ctx, digest, &len);
+  static const char kHex[] = "0123456789abcdef";
+  std::string out;
+  for (unsigned int i = 0; i < len; ++i) {
+    out.push_back(kHex[digest[i] >> 4]);
+    out.push_back(kHex[digest[i] & 15]);
+  }
+  return out;
+}
+
+}  // namespace
+
+std::unique_ptr<Clock> CreateSystemClock() { return std::make_unique<SystemClock>(); }
+
+std::string JobName(int64_t id) { return absl::StrCat("j-", id); }
+
+absl::StatusOr<int64_t> ParseJobId(const std::string& text) {
+  std::string digits = text.rfind("j-", 0) == 0 ? text.substr(2) : text;
+  if (digits.empty() || digits.size() > 18 ||
+      !std::all_of(digits.begin(), digits.end(), [](char c) { return c >= '0' && c <= '9'; })) {
+    return absl::InvalidArgumentError(absl::StrCat("'", text, "' is not a job id (expected j-<number>)"));
+  }
+  return std::stoll(digits);
+}
+
+Upload::~Upload() {
+  if (sha_ != nullptr) EVP_MD_CTX_free(sha_);
+  if (!committed_ && !tmp_path_.empty()) {
+    out_.close();
+    std::error_code ec;
+    fs::remove(tmp_path_, ec);
+  }
+}
+
+absl::Status Upload::Write(const std::string& bytes) {
+  written_ += static_cast<int64_t>(bytes.size());
+  if (written_ > header_.total_bytes()) {
+    return absl::InvalidArgumentError(absl::StrCat("upload of ", header_.name(), " exceeds its declared ",
+                                                   header_.total_bytes(), " bytes"));
+  }
+  EVP_DigestUpdate(sha_, bytes.data(), bytes.size());
+  out_.write(bytes.data(), static_cast<std::streamsize>(bytes.size()));
+  if (!out_) return absl::UnavailableError(absl::StrCat(tmp_path_, ": write failed (disk full?)"));
+  return absl::OkStatus();
+}
+
+Coordinator::Coordinator(std::unique_ptr<JobStore> store, const CoordinatorOptions& options, Clock* clock,
+                         std::shared_ptr<spdlog::logger> log)
+    : store_(std::move(store)), options_(options), clock_(clock), log_(std::move(log)) {}
+
+Coordinator::~Coordinator() { Shutdown(); }
+
+absl::Status Coordinator::Start() {
+  std::error_code ec;
+  fs::create_directories(fs::path(options_.data_dir) / "artifacts", ec);
+  if (ec) return absl::UnavailableError(absl::StrCat(options_.data_dir, ": cannot create: ", ec.message()));
+  Deferred deferred;
+  {
+    std::lock_guard<std::mutex> lock(mu_);
+    absl::Status st = RequeueLapsed(deferred);
+    if (!st.ok()) return st;
+    auto workers = store_->Workers();
+    if (workers.ok()) next_worker_ = static_cast<int64_t>(workers->size()) + 1;
+  }
+  for (auto& f : deferred) f();
+  sweeper_ = std::thread([this] { SweepLoop(); });
+  return absl::OkStatus();
+}
+
+void Coordinator::Shutdown() {
+  std::vector<Waiter> waiters;
+  {
+    std::lock_guard<std::mutex> lock(mu_);
+    if (stopping_) return;
+    stopping_ = true;
+    waiters.swap(waiters_);
+  }
+  wake_.notify_all();
+  if (sweeper_.joinable()) sweeper_.join();
+  for (auto& w : waiters) w.done(absl::OkStatus(), v1::LeaseJobResponse());
+}
+
+v1::Job Coordinator::ToProto(const JobRecord& j, bool with_texts) {
+  v1::Job p;
+  p.set_id(JobName(j.id));
+  p.set_name(j.name);
+  p.set_owner(j.owner);
+  p.set_state(static_cast<v1::JobState>(static_cast<int>(j.state)));
+  p.set_priority(j.priority);
+  for (const auto& [k, v] : j.labels) (*p.mutable_labels())[k] = v;
+  p.set_attempt(j.attempt);
+  p.set_max_attempts(j.max_attempts);
+  p.set_submitted_ms(j.submitted_ms);
+  p.set_started_ms(j.started_ms);
+  p.set_finished_ms(j.finished_ms);
+  p.set_total_steps(j.total_steps);
+  p.set_step(j.step);
+  if (with_texts) {
+    p.set_spec_yaml(j.spec_yaml);
+    p.set_result_json(j.result_json);
+  }
+  p.set_error(j.error);
+  p.set_worker_id(j.worker_id);
+  p.set_checkpoint_step(j.checkpoint_step);
+  return p;
+}
+
+absl::StatusOr<JobRecord> Coordinator::LoadVisible(const Principal& who, const std::string& job_id) {
+  auto id = ParseJobId(job_id);
+  if (!id.ok()) return id.status();
+  auto job = store_->GetJob(*id);
+  if (!job.ok()) {
+    if (absl::IsNotFound(job.status())) return absl::NotFoundError(absl::StrCat("no job ", job_id));
+    return job.status();
+  }
+  // Users see only their own jobs; another user's job is reported as absent.
+  if (who.role != Role::kAdmin && job->owner != who.name) return absl::NotFoundError(absl::StrCat("no job ", job_id));
+  return job;
+}
+
+absl::StatusOr<std::string> Coordinator::Submit(const Principal& who, const v1::SubmitJobRequest& request) {
+  if (static_cast<int64_t>(request.config_yaml().size()) > options_.max_config_bytes) {
+    return absl::ResourceExhaustedError(absl::StrCat("the config is ", request.config_yaml().size(),
+                                                     " bytes; this coordinator accepts at most ",
+                                                     options_.max_config_bytes));
+  }
+  const std::string source = request.source_name().empty() ? "config.yaml" : request.source_name();
+  std::vector<std::string> overrides(request.overrides().begin(), request.overrides().end());
+  auto job = spec::LoadJobFromText(request.config_yaml(), source, overrides);
+  if (!job.ok()) {
+    if (absl::IsInvalidArgument(job.status())) return job.status();
+    return absl::InvalidArgumentError(job.status().message());
+  }
+  JobRecord r;
+  r.name = job->spec.name;
+  r.owner = who.name;
+  r.state = JobState::kQueued;
+  r.priority = request.priority();
+  for (const auto& [k, v] : request.labels()) r.labels[k] = v;
+  r.max_attempts = options_.max_attempts;
+  r.submitted_ms = clock_->NowMs();
+  r.total_steps = job->spec.training.steps;
+  r.spec_yaml = spec::ResolvedSpecYaml(job->spec);
+  Deferred deferred;
+  std::string id;
+  {
+    std::lock_guard<std::mutex> lock(mu_);
+    auto stored = store_->InsertJob(r);
+    if (!stored.ok()) return stored.status();
+    r.id = *stored;
+    id = JobName(r.id);
+    log_->info("job {} attempt 0: queued ({} by {}, priority {})", id, r.name, r.owner, r.priority);
+    ServeWaiters(deferred);
+  }
+  for (auto& f : deferred) f();
+  return id;
+}
+
+absl::StatusOr<v1::Job> Coordinator::Get(const Principal& who, const std::string& job_id) {
+  std::lock_guard<std::mutex> lock(mu_);
+  auto job = LoadVisible(who, job_id);
+  if (!job.ok()) return job.status();
+  v1::Job p = ToProto(*job, true);
+  auto points = store_->Points(job->id, 0);
+  if (!points.ok()) return points.status();
+  if (!points->empty()) {
+    p.mutable_latest()->set_step(points->back().step);
+    p.mutable_latest()->set_attempt(points->back().attempt);
+    p.mutable_latest()->set_metrics_json(points->back().metrics_json);
+  }
+  return p;
+}
+
+absl::StatusOr<v1::ListJobsResponse> Coordinator::List(const Principal& who, const v1::ListJobsRequest& request) {
+  JobFilter filter;
+  if (request.state() != v1::JOB_STATE_UNSPECIFIED) filter.state = static_cast<JobState>(request.state());
+  filter.owner = request.owner();
+  if (who.role != Role::kAdmin) {
+    if (!filter.owner.empty() && filter.owner != who.name) {
+      return absl::PermissionDeniedError(absl::StrCat("'", who.name, "' may list only their own jobs"));
+    }
+    filter.owner = who.name;
+  }
+  for (const auto& [k, v] : request.labels()) filter.labels[k] = v;
+  filter.sweep_id = request.sweep_id();
+  int limit = request.page_size() <= 0 ? 50 : std::min(request.page_size(), 500);
+  int64_t before = 0;
+  if (!request.page_token().empty()) {
+    auto id = ParseJobId(request.page_token());
+    if (!id.ok()) return absl::InvalidArgumentError("page_token: not a token from a previous ListJobs reply");
+    before = *id;
+  }
+  std::lock_guard<std::mutex> lock(mu_);
+  auto jobs = store_->ListJobs(filter, before, limit + 1);
+  if (!jobs.ok()) return jobs.status();
+  v1::ListJobsResponse out;
+  for (int i = 0; i < static_cast<int>(jobs->size()) && i < limit; ++i) *out.add_jobs() = ToProto((*jobs)[i], false);
+  if (static_cast<int>(jobs->size()) > limit) out.set_next_page_token(JobName((*jobs)[limit - 1].id));
+  return out;
+}
+
+absl::StatusOr<v1::Job> Coordinator::Cancel(const Principal& who, const std::string& job_id, const std::string& reason) {
+  Deferred deferred;
+  v1::Job out;
+  {
+    std::lock_guard<std::mutex> lock(mu_);
+    auto job = LoadVisible(who, job_id);
+    if (!job.ok()) return job.status();
+    if (IsFinal(job->state)) {
+      return absl::FailedPreconditionError(absl::StrCat("job ", job_id, " is already ", ToString(job->state)));
+    }
+    const bool was_running = job->state == JobState::kRunning;
+    job->state = JobState::kCancelled;
+    job->finished_ms = clock_->NowMs();
+    job->error = absl::StrCat("cancelled by ", who.name, reason.empty() ? "" : ": ", reason);
+    // A running job keeps its worker until the worker acknowledges (its next report says stop).
+    absl::Status st = store_->UpdateJob(*job);
+    if (!st.ok()) return st;
+    log_->info("job {} attempt {}: cancelled by {}{}", job_id, job->attempt, who.name,
+               was_running ? " (worker told at its next report)" : "");
+    PublishState(*job, deferred);
+    out = ToProto(*job, true);
+  }
+  for (auto& f : deferred) f();
+  return out;
+}
+
+absl::StatusOr<std::vector<v1::MetricPoint>> Coordinator::Metrics(const Principal& who, const std::string& job_id) {
+  std::lock_guard<std::mutex> lock(mu_);
+  auto job = LoadVisible(who, job_id);
+  if (!job.ok()) return job.status();
+  auto points = store_->Points(job->id, 0);
+  if (!points.ok()) return points.status();
+  std::vector<v1::MetricPoint> out;
+  for (const auto& p : *points) {
+    v1::MetricPoint m;
+    m.set_step(p.step);
+    m.set_attempt(p.attempt);
+    m.set_metrics_json(p.metrics_json);
+    out.push_back(std::move(m));
+  }
+  return out;
+}
+
+absl::StatusOr<ArtifactRecord> Coordinator::Artifact(const Principal& who, const std::string& job_id,
+                                                     const std::string& name) {
+  if (!IsArtifactName(name)) {
+    return absl::InvalidArgumentError(absl::StrCat("'", name, "' is not an artifact name; expected one of checkpoint.pt, "
+                                                   "weights.pt, result.json, metrics.jsonl, spec.yaml"));
+  }
+  std::lock_guard<std::mutex> lock(mu_);
+  auto job = LoadVisible(who, job_id);
+  if (!job.ok()) return job.status();
+  auto a = store_->GetArtifact(job->id, name);
+  if (!a.ok()) return a.status();
+  if (!a->has_value()) {
+    return absl::NotFoundError(absl::StrCat("job ", job_id, " has no ", name, " yet (state ", ToString(job->state), ")"));
+  }
+  return **a;
+}
+
+absl::StatusOr<v1::ServerInfo> Coordinator::Info() {
+  v1::ServerInfo info;
+  info.set_version(GRAFT_VERSION_STRING);
+  info.set_data_dir(options_.data_dir);
+  info.set_lease_seconds(options_.lease_ms / 1000);
+  {
+    std::lock_guard<std::mutex> lock(mu_);
+    auto counts = store_->CountByState();
+    if (!counts.ok()) return counts.status();
+    info.set_queued_jobs((*counts)[JobState::kQueued]);
+    info.set_running_jobs((*counts)[JobState::kRunning]);
+    auto workers = store_->Workers();
+    if (!workers.ok()) return workers.status();
+    const int64_t now = clock_->NowMs();
+    int64_t live = 0;
+    for (const auto& w : *workers) {
+      if (now - w.last_seen_ms <= 2 * options_.lease_ms) ++live;
+    }
+    info.set_workers(live);
+  }
+  int64_t bytes = 0;
+  std::error_code ec;
+  for (auto it = fs::recursive_directory_iterator(options_.data_dir, ec); !ec && it != fs::recursive_directory_iterator();
+       it.increment(ec)) {
+    std::error_code e2;
+    if (it->is_regular_file(e2)) bytes += static_cast<int64_t>(it->file_size(e2));
+  }
+  info.set_data_dir_bytes(bytes);
+  return info;
+}
+
+void Coordinator::Publish(int64_t job_id, const v1::JobEvent& event, bool final_state, Deferred& deferred) {
+  for (auto it = watchers_.begin(); it != watchers_.end();) {
+    if (it->second.job_id != job_id) {
+      ++it;
+      continue;
+    }
+    WatchSink sink = it->second.sink;
+    deferred.push_back([sink, event, final_state] {
+      sink(event, false);
+      if (final_state) sink(v1::JobEvent(), true);
+    });
+    it = final_state ? watchers_.erase(it) : std::next(it);
+  }
+}
+
+void Coordinator::PublishState(const JobRecord& job, Deferred& deferred) {
+  v1::JobEvent e;
+  *e.mutable_state_change() = ToProto(job, false);
+  Publish(job.id, e, IsFinal(job.state), deferred);
+}
+
+absl::StatusOr<int64_t> Coordinator::Watch(const Principal& who, const std::string& job_id, int64_t from_step,
+                                           WatchSink sink) {
+  Deferred deferred;
+  int64_t id;
+  {
+    std::lock_guard<std::mutex> lock(mu_);
+    auto job = LoadVisible(who, job_id);
+    if (!job.ok()) return job.status();
+    auto points = store_->Points(job->id, std::max<int64_t>(0, from_step));
+    if (!points.ok()) return points.status();
+    std::vector<v1::JobEvent> initial;
+    v1::JobEvent state;
+    *state.mutable_state_change() = ToProto(*job, false);
+    initial.push_back(state);
+    for (const auto& p : *points) {
+      v1::JobEvent e;
+      e.mutable_point()->set_step(p.step);
+      e.mutable_point()->set_attempt(p.attempt);
+      e.mutable_point()->set_metrics_json(p.metrics_json);
+      initial.push_back(std::move(e));
+    }
+    const bool over = IsFinal(job->state);
+    id = next_watch_id_++;
+    if (!over) watchers_[id] = Watcher{job->id, sink};
+    // Delivered before any later event: deferred callbacks run in order, and later events are
+    // published under mu_ after this point.
+    deferred.push_back([sink, initial, over] {
+      for (const auto& e : initial) sink(e, false);
+      if (over) sink(v1::JobEvent(), true);
+    });
+  }
+  for (auto& f : deferred) f();
+  return id;
+}
+
+void Coordinator::Unwatch(int64_t watch_id) {
+  std::lock_guard<std::mutex> lock(mu_);
+  watchers_.erase(watch_id);
+}
+
+absl::StatusOr<v1::RegisterWorkerResponse> Coordinator::Register(const Principal& who,
+                                                                 const v1::RegisterWorkerRequest& request) {
+  std::lock_guard<std::mutex> lock(mu_);
+  WorkerRecord w;
+  w.id = absl::StrCat("w-", next_worker_++, "-", request.host().empty() ? who.name : request.host());
+  w.host = request.host();
+  w.cores = request.cores();
+  w.threads = request.threads();
+  w.version = request.version();
+  w.registered_ms = w.last_seen_ms = clock_->NowMs();
+  absl::Status st = store_->PutWorker(w);
+  if (!st.ok()) return st;
+  log_->info("worker {} registered ({} cores, {} threads, version {})", w.id, w.cores, w.threads, w.version);
+  v1::RegisterWorkerResponse out;
+  out.set_worker_id(w.id);
+  out.set_lease_seconds(std::max<int64_t>(1, options_.lease_ms / 1000));
+  return out;
+}
+
+absl::StatusOr<v1::LeaseJobResponse> Coordinator::Leased(JobRecord job, Deferred& deferred) {
+  v1::LeaseJobResponse out;
+  out.set_has_job(true);
+  out.set_job_id(JobName(job.id));
+  out.set_attempt(job.attempt);
+  out.set_spec_yaml(job.spec_yaml);
+  int64_t resume = 0;
+  if (job.checkpoint_step > 0) {
+    auto a = store_->GetArtifact(job.id, "checkpoint.pt");
+    if (a.ok() && a->has_value() && fs::exists((*a)->path)) resume = job.checkpoint_step;
+  }
+  out.set_resume_step(resume);
+  acknowledged_[job.id] = resume;
+  if (job.attempt > 1) {
+    // The new attempt replaces every point after the step it resumes from.
+    const int64_t from = resume > 0 ? resume + 1 : 0;
+    absl::Status st = store_->DeletePointsFrom(job.id, from);
+    if (!st.ok()) return st;
+    v1::JobEvent e;
+    e.mutable_rewind()->set_from_step(from);
+    e.mutable_rewind()->set_attempt(job.attempt);
+    Publish(job.id, e, false, deferred);
+  }
+  job.step = resume;
+  absl::Status st = store_->UpdateJob(job);
+  if (!st.ok()) return st;
+  log_->info("job {} attempt {}: running on {}{}", JobName(job.id), job.attempt, job.worker_id,
+             resume > 0 ? absl::StrCat(", resuming from step ", resume) : "");
+  PublishState(job, deferred);
+  return out;
+}
+
+void Coordinator::ServeWaiters(Deferred& deferred) {
+  while (!waiters_.empty()) {
+    Waiter& w = waiters_.front();
+    auto leased = store_->LeaseNext(w.worker_id, clock_->NowMs(), options_.lease_ms);
+    if (!leased.ok()) {
+      log_->error("leasing for {} failed: {}", w.worker_id, leased.status().ToString());
+      return;
+    }
+    if (!leased->has_value()) return;
+    auto reply = Leased(**leased, deferred);
+    LeaseDone done = std::move(w.done);
+    waiters_.erase(waiters_.begin());
+    if (!reply.ok()) {
+      deferred.push_back([done, s = reply.status()] { done(s, v1::LeaseJobResponse()); });
+    } else {
+      deferred.push_back([done, r = *reply] { done(absl::OkStatus(), r); });
+    }
+  }
+}
+
+void Coordinator::Lease(const v1::LeaseJobRequest& request, LeaseDone done) {
+  Deferred deferred;
+  {
+    std::lock_guard<std::mutex> lock(mu_);
+    if (stopping_) {
+      deferred.push_back([done] { done(absl::UnavailableError("the coordinator is shutting down"), v1::LeaseJobResponse()); });
+    } else {
+      // Seen: renew the worker's last_seen.
+      auto workers = store_->Workers();
+      bool known = false;
+      if (workers.ok()) {
+        for (auto& w : *workers) {
+          if (w.id == request.worker_id()) {
+            known = true;
+            w.last_seen_ms = clock_->NowMs();
+            (void)store_->PutWorker(w);
+          }
+        }
+      }
+      if (!known) {
+        deferred.push_back([done, id = request.worker_id()] {
+          done(absl::NotFoundError(absl::StrCat("worker '", id, "' is not registered; call RegisterWorker first")),
+               v1::LeaseJobResponse());
+        });
+      } else {
+        const int64_t wait = std::clamp<int64_t>(request.wait_ms(), 0, 60000);
+        waiters_.push_back(Waiter{request.worker_id(), clock_->NowMs() + wait, std::move(done)});
+        ServeWaiters(deferred);
+      }
+    }
+  }
+  for (auto& f : deferred) f();
+  wake_.notify_all();
+}
+
+absl::StatusOr<JobRecord> Coordinator::LoadLeased(const std::string& job_id, const std::string& worker_id,
+                                                  int32_t attempt, bool allow_cancelled) {
+  auto id = ParseJobId(job_id);
+  if (!id.ok()) return id.status();
+  auto job = store_->GetJob(*id);
+  if (!job.ok()) return absl::NotFoundError(absl::StrCat("no job ", job_id));
+  const bool holder = job->worker_id == worker_id && job->attempt == attempt;
+  if (holder && (job->state == JobState::kRunning || (allow_cancelled && job->state == JobState::kCancelled))) {
+    return job;
+  }
+  return absl::FailedPreconditionError(absl::StrCat(
+      "attempt ", attempt, " of job ", job_id, " by ", worker_id, " is no longer current (the job is ",
+      ToString(job->state), ", attempt ", job->attempt, job->worker_id.empty() ? "" : " on " + job->worker_id,
+      "); drop it"));
+}
+
+absl::StatusOr<v1::ReportResponse> Coordinator::Report(const v1::ReportRequest& request) {
+  Deferred deferred;
+  v1::ReportResponse out;
+  {
+    std::lock_guard<std::mutex> lock(mu_);
+    auto job = LoadLeased(request.job_id(), request.worker_id(), request.attempt(), /*allow_cancelled=*/true);
+    if (!job.ok()) return job.status();
+    std::vector<PointRecord> points;
+    for (const auto& p : request.points()) {
+      PointRecord r;
+      r.step = p.step();
+      r.attempt = request.attempt();
+      r.metrics_json = p.metrics_json();
+      points.push_back(std::move(r));
+    }
+    if (!points.empty()) {
+      // Stored before acknowledged.
+      absl::Status st = store_->PutPoints(job->id, points);
+      if (!st.ok()) return st;
+      int64_t& ack = acknowledged_[job->id];
+      for (const auto& p : points) {
+        ack = std::max(ack, p.step);
+        v1::JobEvent e;
+        e.mutable_point()->set_step(p.step);
+        e.mutable_point()->set_attempt(p.attempt);
+        e.mutable_point()->set_metrics_json(p.metrics_json);
+        Publish(job->id, e, false, deferred);
+      }
+    }
+    out.set_acknowledged_step(acknowledged_[job->id]);
+    if (job->state == JobState::kCancelled) {
+      out.set_stop(true);
+      out.set_stop_reason(job->error);
+    } else {
+      job->step = std::max(job->step, request.step());
+      job->lease_expires_ms = clock_->NowMs() + options_.lease_ms;
+      absl::Status st = store_->UpdateJob(*job);
+      if (!st.ok()) return st;
+      if (!points.empty()) PublishState(*job, deferred);
+    }
+  }
+  for (auto& f : deferred) f();
+  return out;
+}
+
+absl::StatusOr<ArtifactRecord> Coordinator::CheckpointFor(const v1::FetchCheckpointRequest& request) {
+  std::lock_guard<std::mutex> lock(mu_);
+  auto job = LoadLeased(request.job_id(), request.worker_id(), request.attempt(), false);
+  if (!job.ok()) return job.status();
+  auto a = store_->GetArtifact(job->id, "checkpoint.pt");
+  if (!a.ok()) return a.status();
+  if (!a->has_value()) return absl::NotFoundError(absl::StrCat("job ", request.job_id(), " has no checkpoint"));
+  return **a;
+}
+
+absl::StatusOr<std::unique_ptr<Upload>> Coordinator::BeginUpload(const v1::ArtifactHeader& header) {
+  if (!IsArtifactName(header.name())) {
+    return absl::InvalidArgumentError(absl::StrCat("'", header.name(), "' is not an artifact name"));
+  }
+  if (header.total_bytes() < 0 || header.total_bytes() > options_.max_artifact_bytes) {
+    return absl::InvalidArgumentError(absl::StrCat("artifact size ", header.total_bytes(), " outside [0, ",
+                                                   options_.max_artifact_bytes, "]"));
+  }
+  if (header.sha256().size() != 64) return absl::InvalidArgumentError("sha256: expected 64 hex digits");
+  std::lock_guard<std::mutex> lock(mu_);
+  auto job = LoadLeased(header.job_id(), header.worker_id(), header.attempt(), false);
+  if (!job.ok()) return job.status();
+  std::unique_ptr<Upload> up(new Upload());
+  up->header_ = header;
+  up->job_id_ = job->id;
+  const fs::path dir = fs::path(options_.data_dir) / "artifacts" / JobName(job->id);
+  std::error_code ec;
+  fs::create_directories(dir, ec);
+  if (ec) return absl::UnavailableError(absl::StrCat(dir.string(), ": ", ec.message()));
+  up->final_path_ = (dir / header.name()).string();
+  up->tmp_path_ = absl::StrCat(up->final_path_, ".attempt", header.attempt(), ".tmp");
+  up->out_.open(up->tmp_path_, std::ios::binary | std::ios::trunc);
+  if (!up->out_) return absl::UnavailableError(absl::StrCat(up->tmp_path_, ": cannot write"));
+  up->sha_ = EVP_MD_CTX_new();
+  EVP_DigestInit_ex(up->sha_, EVP_sha256(), nullptr);
+  return up;
+}
+
+absl::StatusOr<int64_t> Coordinator::CommitUpload(Upload& up) {
+  up.out_.flush();
+  up.out_.close();
+  if (up.written_ != up.header_.total_bytes()) {
+    return absl::DataLossError(absl::StrCat("upload of ", up.header_.name(), " ended after ", up.written_,
+                                            " of ", up.header_.total_bytes(), " bytes"));
+  }
+  const std::string digest = HexDigest(up.sha_);
+  if (digest != up.header_.sha256()) {
+    return absl::DataLossError(absl::StrCat("upload of ", up.header_.name(), ": SHA-256 ", digest,
+                                            " does not match the declared ", up.header_.sha256()));
+  }
+  Deferred deferred;
+  {
+    std::lock_guard<std::mutex> lock(mu_);
+    auto job = LoadLeased(up.header_.job_id(), up.header_.worker_id(), up.header_.attempt(), false);
+    if (!job.ok()) return job.status();
+    std::error_code ec;
+    fs::rename(up.tmp_path_, up.final_path_, ec);
+    if (ec) return absl::UnavailableError(absl::StrCat(up.final_path_, ": ", ec.message()));
+    up.committed_ = true;
+    ArtifactRecord a;
+    a.job_id = job->id;
+    a.name = up.header_.name();
+    a.path = up.final_path_;
+    a.bytes = up.written_;
+    a.sha256 = digest;
+    a.step = up.header_.step();
+    a.attempt = up.header_.attempt();
+    absl::Status st = store_->PutArtifact(a);
+    if (!st.ok()) return st;
+    job->lease_expires_ms = clock_->NowMs() + options_.lease_ms;
+    if (a.name == "checkpoint.pt") job->checkpoint_step = a.step;
+    st = store_->UpdateJob(*job);
+    if (!st.ok()) return st;
+  }
+  return up.written_;
+}
+
+absl::Status Coordinator::Finish(const v1::FinishJobRequest& request) {
+  Deferred deferred;
+  {
+    std::lock_guard<std::mutex> lock(mu_);
+    const bool stopped = request.outcome_case() == v1::FinishJobRequest::kStoppedReason;
+    auto job = LoadLeased(request.job_id(), request.worker_id(), request.attempt(), /*allow_cancelled=*/true);
+    if (!job.ok()) return job.status();
+    if (job->state == JobState::kCancelled && !stopped) {
+      // Finished just as it was cancelled: the cancellation stands.
+      job->worker_id.clear();
+      absl::Status st = store_->UpdateJob(*job);
+      if (!st.ok()) return st;
+      PublishState(*job, deferred);
+    } else {
+      const std::string id = JobName(job->id);
+      switch (request.outcome_case()) {
+        case v1::FinishJobRequest::kSucceededResultJson:
+          job->state = JobState::kSucceeded;
+          job->result_json = request.succeeded_result_json();
+          job->finished_ms = clock_->NowMs();
+          job->step = job->total_steps;
+          log_->info("job {} attempt {}: succeeded on {}", id, job->attempt, job->worker_id);
+          break;
+        case v1::FinishJobRequest::kFailedReason:
+          job->state = JobState::kFailed;
+          job->error = request.failed_reason();
+          job->finished_ms = clock_->NowMs();
+          log_->info("job {} attempt {}: failed on {}: {}", id, job->attempt, job->worker_id, job->error);
+          break;
+        case v1::FinishJobRequest::kHandedBackReason:
+          // Not counted as an attempt: the allowance grows by one.
+          job->state = JobState::kQueued;
+          job->max_attempts += 1;
+          log_->info("job {} attempt {}: handed back by {} ({}); queued again", id, job->attempt, job->worker_id,
+                     request.handed_back_reason());
+          break;
+        case v1::FinishJobRequest::kStoppedReason:
+          job->error = absl::StrCat(job->error, "; the worker ", request.stopped_reason());
+          log_->info("job {} attempt {}: {} stopped it after the cancellation", id, job->attempt, job->worker_id);
+          break;
+        default:
+          return absl::InvalidArgumentError("FinishJob needs an outcome");
+      }
+      job->worker_id.clear();
+      job->lease_expires_ms = 0;
+      absl::Status st = store_->UpdateJob(*job);
+      if (!st.ok()) return st;
+      PublishState(*job, deferred);
+      if (job->state == JobState::kQueued) ServeWaiters(deferred);
+    }
+  }
+  for (auto& f : deferred) f();
+  return absl::OkStatus();
+}
+
+absl::Status Coordinator::RequeueLapsed(Deferred& deferred) {
+  auto lapsed = store_->ExpiredLeases(clock_->NowMs());
+  if (!lapsed.ok()) return lapsed.status();
+  for (JobRecord job : *lapsed) {
+    const std::string id = JobName(job.id);
+    const std::string worker = job.worker_id;
+    job.worker_id.clear();
+    job.lease_expires_ms = 0;
+    if (job.attempt >= job.max_attempts) {
+      job.state = JobState::kFailed;
+      job.finished_ms = clock_->NowMs();
+      job.error = absl::StrCat("the lease of attempt ", job.attempt, " lapsed (", worker,
+                               " stopped reporting); no attempts left of ", job.max_attempts);
+      log_->warn("job {} attempt {}: lease lapsed on {}; failed after {} attempts", id, job.attempt, worker,
+                 job.max_attempts);
+    } else {
+      job.state = JobState::kQueued;
+      log_->warn("job {} attempt {}: lease lapsed on {}; queued for attempt {}", id, job.attempt, worker,
+                 job.attempt + 1);
+    }
+    absl::Status st = store_->UpdateJob(job);
+    if (!st.ok()) return st;
+    PublishState(job, deferred);
+  }
+  if (!lapsed->empty()) ServeWaiters(deferred);
+  return absl::OkStatus();
+}
+
+void Coordinator::Sweep() {
+  Deferred deferred;
+  {
+    std::lock_guard<std::mutex> lock(mu_);
+    absl::Status st = RequeueLapsed(deferred);
+    if (!st.ok()) log_->error("checking leases failed: {}", st.ToString());
+    const int64_t now = clock_->NowMs();
+    for (auto it = waiters_.begin(); it != waiters_.end();) {
+      if (it->deadline_ms <= now) {
+        LeaseDone done = std::move(it->done);
+        deferred.push_back([done] { done(absl::OkStatus(), v1::LeaseJobResponse()); });
+        it = waiters_.erase(it);
+      } else {
+        ++it;
+      }
+    }
+  }
+  for (auto& f : deferred) f();
+}
+
+void Coordinator::SweepLoop() {
+  std::unique_lock<std::mutex> lock(mu_);
+  while (!stopping_) {
+    wake_.wait_for(lock, std::chrono::milliseconds(options_.sweep_interval_ms));
+    if (stopping_) break;
+    lock.unlock();
+    Sweep();
+    lock.lock();
+  }
+}
+
+}  // namespace graft::server

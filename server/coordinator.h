@@ -1,0 +1,157 @@
+// The coordinator's logic, independent of gRPC: submitting and validating jobs, the queue and
+// its leases (long polls, expiry, attempts, hand-backs), metric points and their watchers,
+// artifacts in the data dir, and who may see what. The gRPC services in services.h are thin
+// adapters over it. Thread-safety: every public method is safe to call from any thread; one
+// mutex serialises state changes, and callbacks (watch events, lease replies) are invoked
+// outside it.
+#ifndef GRAFT_SERVER_COORDINATOR_H_
+#define GRAFT_SERVER_COORDINATOR_H_
+
+#include <openssl/evp.h>
+
+#include <condition_variable>
+#include <cstdint>
+#include <fstream>
+#include <functional>
+#include <map>
+#include <memory>
+#include <mutex>
+#include <string>
+#include <thread>
+#include <vector>
+
+#include "absl/status/statusor.h"
+#include "graft/v1/graft.pb.h"
+#include "server/auth.h"
+#include "server/job_store.h"
+#include "spdlog/logger.h"
+
+namespace graft::server {
+
+// The time source, a seam for tests.
+class Clock {
+ public:
+  virtual ~Clock() = default;
+  virtual int64_t NowMs() = 0;
+};
+std::unique_ptr<Clock> CreateSystemClock();
+
+struct CoordinatorOptions {
+  std::string data_dir = "./var/graft";  // database and artifacts
+  int64_t lease_ms = 30000;               // a worker must report within this
+  int max_attempts = 3;                   // leases a job may use before it fails
+  int64_t max_config_bytes = 1 << 20;     // larger submissions are refused
+  int64_t max_artifact_bytes = int64_t{4} << 30;
+  int64_t sweep_interval_ms = 200;        // how often lapsed leases and long polls are checked
+};
+
+// An artifact upload in progress; owned by the caller between BeginUpload and CommitUpload.
+class Upload {
+ public:
+  ~Upload();
+  absl::Status Write(const std::string& bytes);
+
+ private:
+  friend class Coordinator;
+  Upload() = default;
+  v1::ArtifactHeader header_;
+  int64_t job_id_ = 0;
+  std::string tmp_path_, final_path_;
+  std::ofstream out_;
+  int64_t written_ = 0;
+  EVP_MD_CTX* sha_ = nullptr;
+  bool committed_ = false;
+};
+
+class Coordinator {
+ public:
+  Coordinator(std::unique_ptr<JobStore> store, const CoordinatorOptions& options, Clock* clock,
+              std::shared_ptr<spdlog::logger> log);
+  ~Coordinator();
+  Coordinator(const Coordinator&) = delete;
+  Coordinator& operator=(const Coordinator&) = delete;
+
+  // Recovers (jobs whose lease lapsed while the coordinator was down go back to the queue)
+  // and starts the background sweeper. REQUIRES: called once, before serving.
+  absl::Status Start();
+  // Stops the sweeper and answers every waiting long poll with "no job".
+  void Shutdown();
+
+  // --- people and scripts
+  absl::StatusOr<std::string> Submit(const Principal& who, const v1::SubmitJobRequest& request);
+  absl::StatusOr<v1::Job> Get(const Principal& who, const std::string& job_id);
+  absl::StatusOr<v1::ListJobsResponse> List(const Principal& who, const v1::ListJobsRequest& request);
+  absl::StatusOr<v1::Job> Cancel(const Principal& who, const std::string& job_id, const std::string& reason);
+  absl::StatusOr<std::vector<v1::MetricPoint>> Metrics(const Principal& who, const std::string& job_id);
+  // The stored artifact's record (its bytes are in record.path).
+  absl::StatusOr<ArtifactRecord> Artifact(const Principal& who, const std::string& job_id, const std::string& name);
+  absl::StatusOr<v1::ServerInfo> Info();
+
+  // Watching: `sink` receives the job's current state, then its stored points with step >=
+  // from_step, then every later event, in order, until Unwatch or a final state (after which
+  // `sink` gets `done` = true once). `sink` must not block or call back into the coordinator.
+  using WatchSink = std::function<void(const v1::JobEvent& event, bool done)>;
+  absl::StatusOr<int64_t> Watch(const Principal& who, const std::string& job_id, int64_t from_step, WatchSink sink);
+  void Unwatch(int64_t watch_id);
+
+  // --- workers (the caller has already checked the worker role)
+  absl::StatusOr<v1::RegisterWorkerResponse> Register(const Principal& who, const v1::RegisterWorkerRequest& request);
+  // Completes `done` (exactly once, from any thread) within request.wait_ms, with a job or
+  // has_job = false.
+  using LeaseDone = std::function<void(absl::Status status, const v1::LeaseJobResponse& response)>;
+  void Lease(const v1::LeaseJobRequest& request, LeaseDone done);
+  absl::StatusOr<v1::ReportResponse> Report(const v1::ReportRequest& request);
+  absl::StatusOr<ArtifactRecord> CheckpointFor(const v1::FetchCheckpointRequest& request);
+  absl::StatusOr<std::unique_ptr<Upload>> BeginUpload(const v1::ArtifactHeader& header);
+  absl::StatusOr<int64_t> CommitUpload(Upload& upload);
+  absl::Status Finish(const v1::FinishJobRequest& request);
+
+ private:
+  struct Waiter {
+    std::string worker_id;
+    int64_t deadline_ms;
+    LeaseDone done;
+  };
+  struct Watcher {
+    int64_t job_id;
+    WatchSink sink;
+  };
+  using Deferred = std::vector<std::function<void()>>;  // callbacks to run after unlocking
+
+  absl::StatusOr<JobRecord> LoadVisible(const Principal& who, const std::string& job_id);  // REQUIRES: mu_
+  absl::StatusOr<JobRecord> LoadLeased(const std::string& job_id, const std::string& worker_id, int32_t attempt,
+                                       bool allow_cancelled);  // REQUIRES: mu_
+  v1::Job ToProto(const JobRecord& job, bool with_texts);
+  void Publish(int64_t job_id, const v1::JobEvent& event, bool final_state, Deferred& deferred);  // REQUIRES: mu_
+  void PublishState(const JobRecord& job, Deferred& deferred);                                    // REQUIRES: mu_
+  // Leases queued jobs to waiting workers. REQUIRES: mu_
+  void ServeWaiters(Deferred& deferred);
+  // Builds the lease reply for a freshly leased job (resume point, rewind). REQUIRES: mu_
+  absl::StatusOr<v1::LeaseJobResponse> Leased(JobRecord job, Deferred& deferred);
+  void Sweep();
+  void SweepLoop();
+  absl::Status RequeueLapsed(Deferred& deferred);  // REQUIRES: mu_
+
+  std::unique_ptr<JobStore> store_;
+  const CoordinatorOptions options_;
+  Clock* clock_;
+  std::shared_ptr<spdlog::logger> log_;
+
+  std::mutex mu_;
+  std::vector<Waiter> waiters_;                  // guarded by mu_
+  std::map<int64_t, Watcher> watchers_;          // guarded by mu_
+  int64_t next_watch_id_ = 1;                    // guarded by mu_
+  std::map<int64_t, int64_t> acknowledged_;      // job -> highest stored step this attempt; guarded by mu_
+  int64_t next_worker_ = 1;                      // guarded by mu_
+  bool stopping_ = false;                        // guarded by mu_
+  std::condition_variable wake_;
+  std::thread sweeper_;
+};
+
+// "j-42" <-> 42.
+std::string JobName(int64_t id);
+absl::StatusOr<int64_t> ParseJobId(const std::string& text);
+
+}  // namespace graft::server
+
+#endif  // GRAFT_SERVER_COORDINATOR_H_

@@ -1,0 +1,34 @@
+// graftd's settings: defaults, overridden by a YAML file (configs/graftd.yaml), overridden by
+// flags. Thread-safety: a plain value.
+#ifndef GRAFT_SERVER_GRAFTD_CONFIG_H_
+#define GRAFT_SERVER_GRAFTD_CONFIG_H_
+
+#include <cstdint>
+#include <string>
+
+#include "absl/status/statusor.h"
+#include "server/job_store.h"
+
+namespace graft::server {
+
+struct GraftdConfig {
+  std::string listen = "127.0.0.1:7070";  // host:port; port 0 picks a free port
+  std::string data_dir = "./var/graft";    // database (local disk only: WAL) and artifacts
+  std::string tokens_file;                 // YAML list of {name, role, sha256}; required
+  int64_t lease_seconds = 30;              // a worker must report within this
+  int max_attempts = 3;                    // leases per job before it fails
+  int64_t max_config_bytes = 1 << 20;      // larger submissions are refused
+  Durability durability = Durability::kNormal;  // normal: survives a killed process; full: power loss
+  bool allow_plaintext = false;            // needed for a non-loopback listen address (no TLS yet)
+  std::string port_file;                   // if set, the bound port is written here once listening
+};
+
+// Applies the keys of a graftd YAML file to `config`; errors name file:line:col and the key.
+absl::Status LoadGraftdConfig(const std::string& path, GraftdConfig* config);
+
+// True for 127.0.0.0/8, [::1], localhost.
+bool IsLoopbackAddress(const std::string& listen);
+
+}  // namespace graft::server
+
+#endif  // GRAFT_SERVER_GRAFTD_CONFIG_H_

@@ -1,0 +1,25 @@
+// The gRPC services of graft.v1 over a Coordinator, with the callback API: streaming calls and
+// the lease long poll hold no thread while they wait. Every call is authorised first, in
+// Authorize() (server/auth.h). Thread-safety: the services may be called concurrently; they
+// keep no state of their own beyond the coordinator and the token table they point to, both
+// of which must outlive them.
+#ifndef GRAFT_SERVER_SERVICES_H_
+#define GRAFT_SERVER_SERVICES_H_
+
+#include <memory>
+
+#include "graft/v1/graft.grpc.pb.h"
+#include "server/auth.h"
+#include "server/coordinator.h"
+
+namespace graft::server {
+
+std::unique_ptr<v1::Jobs::CallbackService> CreateJobsService(Coordinator* coordinator, const TokenTable* tokens);
+std::unique_ptr<v1::Workers::CallbackService> CreateWorkersService(Coordinator* coordinator, const TokenTable* tokens);
+
+// absl::Status -> grpc::Status with the same code and message.
+grpc::Status ToGrpc(const absl::Status& status);
+
+}  // namespace graft::server
+
+#endif  // GRAFT_SERVER_SERVICES_H_

@@ -1,0 +1,515 @@
+// graftd and graft-worker as real processes on loopback ports the server picks, driven by a
+// small C++ client: submit and finish, cancel, auth for every RPC and role, a coordinator
+// killed with SIGKILL, a worker killed with SIGKILL.
+#include <signal.h>
+
+#include <chrono>
+#include <fstream>
+#include <map>
+#include <set>
+#include <sstream>
+#include <thread>
+
+#include <grpcpp/grpcpp.h>
+
+#include "graft/v1/graft.grpc.pb.h"
+#include "gtest/gtest.h"
+#include "nlohmann/json.hpp"
+#include "server/auth.h"
+#include "tests/test_util.h"
+
+namespace graft {
+namespace {
+
+using json = nlohmann::json;
+using ::graft::testing::BinaryDir;
+using ::graft::testing::ReadFile;
+using ::graft::testing::ScopedProcess;
+using ::graft::testing::ScopedTempDir;
+using ::graft::testing::SourceDir;
+using ::graft::testing::WaitFor;
+using ::graft::testing::WriteFile;
+
+const char kAlice[] = "alice-token-3f9c";
+const char kBob[] = "bob-token-77a1";
+const char kRoot[] = "root-token-c0de";
+const char kWorker[] = "worker-token-5e5e";
+
+// A coordinator with its own data dir and tokens, on a port it picks.
+class Cluster {
+ public:
+  explicit Cluster(int lease_seconds = 30) : lease_seconds_(lease_seconds) {
+    std::ostringstream tokens;
+    for (auto [token, name, role] : {std::tuple{kAlice, "alice", "user"}, std::tuple{kBob, "bob", "user"},
+                                     std::tuple{kRoot, "root", "admin"}, std::tuple{kWorker, "node1", "worker"}}) {
+      tokens << "- {name: " << name << ", role: " << role << ", sha256: " << server::Sha256Hex(token) << "}\n";
+    }
+    WriteFile(dir_.path() + "/tokens.yaml", tokens.str());
+    WriteFile(dir_.path() + "/worker.token", std::string(kWorker) + "\n");
+    StartCoordinator();
+  }
+
+  void StartCoordinator() {
+    std::remove((dir_.path() + "/port").c_str());
+    graftd_ = std::make_unique<ScopedProcess>(
+        std::vector<std::string>{BinaryDir() + "/bin/graftd", "--listen", "127.0.0.1:" + std::to_string(port_),
+                                 "--data-dir", dir_.path() + "/data", "--tokens", dir_.path() + "/tokens.yaml",
+                                 "--lease-seconds", std::to_string(lease_seconds_), "--port-file",
+                                 dir_.path() + "/port"},
+        dir_.path() + "/graftd.log");
+    ASSERT_TRUE(WaitFor([&] { return !ReadPort().empty(); }, 20000)) << ReadFile(dir_.path() + "/graftd.log");
+    port_ = std::stoi(ReadPort());
+    channel_ = grpc::CreateChannel("127.0.0.1:" + std::to_string(port_), grpc::InsecureChannelCredentials());
+    jobs_ = v1::Jobs::NewStub(channel_);
+    workers_ = v1::Workers::NewStub(channel_);
+  }
+  void KillCoordinator() {
+    graftd_->Signal(SIGKILL);
+    graftd_->Wait(10000);
+  }
+
+  std::unique_ptr<ScopedProcess> StartWorker(const std::string& name) {
+    return std::make_unique<ScopedProcess>(
+        std::vector<std::string>{BinaryDir() + "/bin/graft-worker", "serve", "--server",
+                                 "127.0.0.1:" + std::to_string(port_), "--token-file", dir_.path() + "/worker.token",
+                                 "--work-dir", dir_.path() + "/" + name},
+        dir_.path() + "/" + name + ".log");
+  }
+
+  std::unique_ptr<grpc::ClientContext> Ctx(const std::string& token, int timeout_ms = 20000) {
+    auto ctx = std::make_unique<grpc::ClientContext>();
+    if (!token.empty()) ctx->AddMetadata("authorization", "Bearer " + token);
+    ctx->set_deadline(std::chrono::system_clock::now() + std::chrono::milliseconds(timeout_ms));
+    return ctx;
+  }
+
+  std::string Submit(const std::string& token, const std::string& config, const std::vector<std::string>& sets) {
+    v1::SubmitJobRequest req;
+    req.set_config_yaml(ReadFile(SourceDir() + "/configs/" + config + ".yaml"));
+    req.set_source_name(config + ".yaml");
+    for (const auto& s : sets) req.add_overrides(s);
+    v1::SubmitJobResponse resp;
+    grpc::Status s = jobs_->SubmitJob(Ctx(token).get(), req, &resp);
+    EXPECT_TRUE(s.ok()) << s.error_message();
+    return resp.job_id();
+  }
+  v1::Job Get(const std::string& id, const std::string& token = kAlice) {
+    v1::GetJobRequest req;
+    req.set_job_id(id);
+    v1::Job job;
+    grpc::Status s = jobs_->GetJob(Ctx(token).get(), req, &job);
+    EXPECT_TRUE(s.ok()) << s.error_message();
+    return job;
+  }
+  std::vector<v1::MetricPoint> Metrics(const std::string& id, const std::string& token = kAlice) {
+    v1::GetMetricsRequest req;
+    req.set_job_id(id);
+    v1::GetMetricsResponse resp;
+    grpc::Status s = jobs_->GetMetrics(Ctx(token).get(), req, &resp);
+    EXPECT_TRUE(s.ok()) << s.error_message();
+    return {resp.points().begin(), resp.points().end()};
+  }
+  bool WaitState(const std::string& id, v1::JobState state, int timeout_ms) {
+    return WaitFor([&] { return Get(id).state() == state; }, timeout_ms);
+  }
+
+  const std::string& dir() const { return dir_.path(); }
+  v1::Jobs::Stub& jobs() { return *jobs_; }
+  v1::Workers::Stub& workers() { return *workers_; }
+  std::string Log() const { return ReadFile(dir_.path() + "/graftd.log"); }
+
+ private:
+  std::string ReadPort() {
+    std::ifstream in(dir_.path() + "/port");
+    std::string p;
+    in >> p;
+    return p;
+  }
+
+  ScopedTempDir dir_;
+  int lease_seconds_;
+  int port_ = 0;
+  std::unique_ptr<ScopedProcess> graftd_;
+  std::shared_ptr<grpc::Channel> channel_;
+  std::unique_ptr<v1::Jobs::Stub> jobs_;
+  std::unique_ptr<v1::Workers::Stub> workers_;
+};
+
+json WithoutTimings(json j) {
+  for (const char* k : {"wall_s", "seconds", "examples_per_s", "peak_rss_mb", "first_step_s", "step_seconds"}) j.erase(k);
+  if (j.contains("provenance")) j.erase("provenance");
+  return j;
+}
+
+const std::vector<std::string> kSmall = {"training.steps=120", "training.batch_size=64", "evaluation.every=40",
+                                         "evaluation.triples=256", "network.hidden=[32,32,32]"};
+
+TEST(Service, SubmitTrainAndFetchArtifacts) {
+  Cluster c;
+  auto worker = c.StartWorker("w1");
+  const std::string id = c.Submit(kAlice, "parcel-routing", kSmall);
+  ASSERT_FALSE(id.empty());
+  ASSERT_TRUE(c.WaitState(id, v1::JOB_STATE_SUCCEEDED, 60000)) << c.Log() << ReadFile(worker->log_path());
+  v1::Job job = c.Get(id);
+  EXPECT_EQ(job.attempt(), 1);
+  EXPECT_EQ(job.owner(), "alice");
+  EXPECT_EQ(job.step(), 120);
+  json result = json::parse(job.result_json());
+  EXPECT_EQ(result["steps"], 120);
+  std::vector<v1::MetricPoint> points = c.Metrics(id);
+  ASSERT_EQ(points.size(), 4u);  // steps 0, 40, 80, 120
+  EXPECT_EQ(points.back().step(), 120);
+  EXPECT_EQ(json::parse(points.back().metrics_json())["iia_test"], result["iia_test"]);
+  // Download weights.pt in chunks and check its digest.
+  v1::DownloadArtifactRequest req;
+  req.set_job_id(id);
+  req.set_name("weights.pt");
+  auto ctx = c.Ctx(kAlice);
+  auto reader = c.jobs().DownloadArtifact(ctx.get(), req);
+  v1::ArtifactChunk chunk;
+  std::string bytes, sha;
+  int64_t total = -1;
+  while (reader->Read(&chunk)) {
+    if (!chunk.sha256().empty()) {
+      sha = chunk.sha256();
+      total = chunk.total_bytes();
+    }
+    bytes += chunk.data();
+  }
+  ASSERT_TRUE(reader->Finish().ok());
+  EXPECT_EQ(static_cast<int64_t>(bytes.size()), total);
+  EXPECT_EQ(server::Sha256Hex(bytes), sha);
+  // One log line per state change, with the job id and attempt; no token in the log.
+  const std::string log = c.Log();
+  EXPECT_NE(log.find("job " + id + " attempt 1: running on"), std::string::npos) << log;
+  EXPECT_NE(log.find("job " + id + " attempt 1: succeeded"), std::string::npos) << log;
+  for (const char* t : {kAlice, kBob, kRoot, kWorker}) EXPECT_EQ(log.find(t), std::string::npos);
+}
+
+TEST(Service, RejectsAnInvalidConfigWithItsLocation) {
+  Cluster c;
+  v1::SubmitJobRequest req;
+  req.set_config_yaml(ReadFile(SourceDir() + "/configs/parcel-routing.yaml"));
+  req.set_source_name("parcel-routing.yaml");
+  req.add_overrides("training.stepz=5");
+  v1::SubmitJobResponse resp;
+  grpc::Status s = c.jobs().SubmitJob(c.Ctx(kAlice).get(), req, &resp);
+  EXPECT_EQ(s.error_code(), grpc::StatusCode::INVALID_ARGUMENT);
+  EXPECT_NE(s.error_message().find("--set #1:1:10: unknown key 'stepz' in 'training'; did you mean 'steps'?"),
+            std::string::npos)
+      << s.error_message();
+  req.clear_overrides();
+  req.set_config_yaml(std::string(2 << 20, '#'));
+  s = c.jobs().SubmitJob(c.Ctx(kAlice).get(), req, &resp);
+  EXPECT_EQ(s.error_code(), grpc::StatusCode::RESOURCE_EXHAUSTED) << s.error_message();
+}
+
+TEST(Service, CancelStopsARunningJobWithinOneEvaluationInterval) {
+  Cluster c;
+  auto worker = c.StartWorker("w1");
+  // About 1 ms per step: an evaluation every 2000 steps is about 2 s, longer than the worker's
+  // 1 s heartbeat, so the step seen here lags the real one by less than one interval.
+  const int every = 2000;
+  const std::string id = c.Submit(kAlice, "parcel-routing",
+                                  {"training.steps=1000000", "evaluation.every=2000", "evaluation.triples=256",
+                                   "training.checkpoint_every=1000000"});
+  ASSERT_TRUE(WaitFor([&] { return c.Get(id).step() > 0; }, 60000)) << ReadFile(worker->log_path());
+  const int64_t seen = c.Get(id).step();
+  v1::CancelJobRequest req;
+  req.set_job_id(id);
+  req.set_reason("changed my mind");
+  v1::Job cancelled;
+  ASSERT_TRUE(c.jobs().CancelJob(c.Ctx(kAlice).get(), req, &cancelled).ok());
+  EXPECT_EQ(cancelled.state(), v1::JOB_STATE_CANCELLED);
+  // The worker acknowledges: the lease holder is cleared and the stop step recorded.
+  ASSERT_TRUE(WaitFor([&] { return c.Get(id).worker_id().empty(); }, 30000)) << ReadFile(worker->log_path());
+  const std::string error = c.Get(id).error();
+  const size_t at = error.find("stopped at step ");
+  ASSERT_NE(at, std::string::npos) << error;
+  const int64_t stopped = std::stoll(error.substr(at + 16));
+  EXPECT_GE(stopped, seen);
+  EXPECT_LE(stopped, seen + 2 * every) << "seen at cancel " << seen << ", stopped at " << stopped;
+  // Cancelling again is refused: the job is final.
+  grpc::Status again = c.jobs().CancelJob(c.Ctx(kAlice).get(), req, &cancelled);
+  EXPECT_EQ(again.error_code(), grpc::StatusCode::FAILED_PRECONDITION);
+  // The worker is free for the next job.
+  const std::string next = c.Submit(kAlice, "parcel-routing", kSmall);
+  EXPECT_TRUE(c.WaitState(next, v1::JOB_STATE_SUCCEEDED, 60000)) << ReadFile(worker->log_path());
+}
+
+// Every RPC with no token, a wrong token and each role (table-driven).
+TEST(Service, EveryCallNeedsATokenAndTheRightRole) {
+  Cluster c;
+  const std::string job = c.Submit(kAlice, "parcel-routing", kSmall);
+  using Call = std::function<grpc::Status(grpc::ClientContext*)>;
+  std::map<std::string, std::pair<bool, Call>> calls;  // name -> (worker service?, call)
+  auto& J = c.jobs();
+  auto& W = c.workers();
+  calls["SubmitJob"] = {false, [&](grpc::ClientContext* x) {
+                          v1::SubmitJobRequest r;
+                          r.set_config_yaml(ReadFile(SourceDir() + "/configs/parcel-routing.yaml"));
+                          v1::SubmitJobResponse o;
+                          return J.SubmitJob(x, r, &o);
+                        }};
+  calls["GetJob"] = {false, [&](grpc::ClientContext* x) {
+                       v1::GetJobRequest r;
+                       r.set_job_id(job);
+                       v1::Job o;
+                       return J.GetJob(x, r, &o);
+                     }};
+  calls["ListJobs"] = {false, [&](grpc::ClientContext* x) {
+                         v1::ListJobsRequest r;
+                         v1::ListJobsResponse o;
+                         return J.ListJobs(x, r, &o);
+                       }};
+  calls["CancelJob"] = {false, [&](grpc::ClientContext* x) {
+                          v1::CancelJobRequest r;
+                          r.set_job_id("j-999999");
+                          v1::Job o;
+                          return J.CancelJob(x, r, &o);
+                        }};
+  calls["WatchJob"] = {false, [&](grpc::ClientContext* x) {
+                         v1::WatchJobRequest r;
+                         r.set_job_id("j-999999");
+                         auto rd = J.WatchJob(x, r);
+                         v1::JobEvent e;
+                         while (rd->Read(&e)) {
+                         }
+                         return rd->Finish();
+                       }};
+  calls["GetMetrics"] = {false, [&](grpc::ClientContext* x) {
+                           v1::GetMetricsRequest r;
+                           r.set_job_id(job);
+                           v1::GetMetricsResponse o;
+                           return J.GetMetrics(x, r, &o);
+                         }};
+  calls["DownloadArtifact"] = {false, [&](grpc::ClientContext* x) {
+                                 v1::DownloadArtifactRequest r;
+                                 r.set_job_id(job);
+                                 r.set_name("weights.pt");
+                                 auto rd = J.DownloadArtifact(x, r);
+                                 v1::ArtifactChunk ch;
+                                 while (rd->Read(&ch)) {
+                                 }
+                                 return rd->Finish();
+                               }};
+  calls["GetServerInfo"] = {false, [&](grpc::ClientContext* x) {
+                              v1::GetServerInfoRequest r;
+                              v1::ServerInfo o;
+                              return J.GetServerInfo(x, r, &o);
+                            }};
+  calls["RegisterWorker"] = {true, [&](grpc::ClientContext* x) {
+                               v1::RegisterWorkerRequest r;
+                               r.set_host("test");
+                               v1::RegisterWorkerResponse o;
+                               return W.RegisterWorker(x, r, &o);
+                             }};
+  calls["LeaseJob"] = {true, [&](grpc::ClientContext* x) {
+                         v1::LeaseJobRequest r;
+                         r.set_worker_id("w-unknown");
+                         r.set_wait_ms(10);
+                         v1::LeaseJobResponse o;
+                         return W.LeaseJob(x, r, &o);
+                       }};
+  calls["Report"] = {true, [&](grpc::ClientContext* x) {
+                       v1::ReportRequest r;
+                       r.set_job_id("j-999999");
+                       v1::ReportResponse o;
+                       return W.Report(x, r, &o);
+                     }};
+  calls["FetchCheckpoint"] = {true, [&](grpc::ClientContext* x) {
+                                v1::FetchCheckpointRequest r;
+                                r.set_job_id("j-999999");
+                                auto rd = W.FetchCheckpoint(x, r);
+                                v1::ArtifactChunk ch;
+                                while (rd->Read(&ch)) {
+                                }
+                                return rd->Finish();
+                              }};
+  calls["UploadArtifact"] = {true, [&](grpc::ClientContext* x) {
+                               v1::UploadArtifactResponse o;
+                               auto wr = W.UploadArtifact(x, &o);
+                               v1::UploadArtifactRequest r;
+                               r.mutable_header()->set_job_id("j-999999");
+                               r.mutable_header()->set_name("weights.pt");
+                               r.mutable_header()->set_sha256(std::string(64, '0'));
+                               wr->Write(r);
+                               wr->WritesDone();
+                               return wr->Finish();
+                             }};
+  calls["FinishJob"] = {true, [&](grpc::ClientContext* x) {
+                          v1::FinishJobRequest r;
+                          r.set_job_id("j-999999");
+                          r.set_failed_reason("test");
+                          v1::FinishJobResponse o;
+                          return W.FinishJob(x, r, &o);
+                        }};
+  ASSERT_EQ(calls.size(), 14u);
+  struct Who {
+    std::string label, token;
+    enum { kNone, kJobs, kWorkers } may;
+  };
+  const std::vector<Who> who = {{"no token", "", Who::kNone},
+                                {"wrong token", "not-a-token", Who::kNone},
+                                {"user", kAlice, Who::kJobs},
+                                {"admin", kRoot, Who::kJobs},
+                                {"worker", kWorker, Who::kWorkers}};
+  for (const auto& [name, entry] : calls) {
+    const auto& [worker_service, call] = entry;
+    for (const Who& w : who) {
+      auto ctx = c.Ctx(w.token, 10000);
+      grpc::Status s = call(ctx.get());
+      SCOPED_TRACE(name + " as " + w.label + ": " + std::to_string(s.error_code()) + " " + s.error_message());
+      if (w.may == Who::kNone) {
+        EXPECT_EQ(s.error_code(), grpc::StatusCode::UNAUTHENTICATED);
+      } else if ((w.may == Who::kWorkers) != worker_service) {
+        EXPECT_EQ(s.error_code(), grpc::StatusCode::PERMISSION_DENIED);
+      } else {
+        EXPECT_NE(s.error_code(), grpc::StatusCode::UNAUTHENTICATED);
+        EXPECT_NE(s.error_code(), grpc::StatusCode::PERMISSION_DENIED);
+      }
+    }
+  }
+  // Users see and cancel only their own jobs; admins see all.
+  v1::GetJobRequest get;
+  get.set_job_id(job);
+  v1::Job out;
+  EXPECT_EQ(c.jobs().GetJob(c.Ctx(kBob).get(), get, &out).error_code(), grpc::StatusCode::NOT_FOUND);
+  EXPECT_TRUE(c.jobs().GetJob(c.Ctx(kRoot).get(), get, &out).ok());
+  v1::CancelJobRequest cancel;
+  cancel.set_job_id(job);
+  EXPECT_EQ(c.jobs().CancelJob(c.Ctx(kBob).get(), cancel, &out).error_code(), grpc::StatusCode::NOT_FOUND);
+  v1::ListJobsRequest list;
+  v1::ListJobsResponse listed;
+  ASSERT_TRUE(c.jobs().ListJobs(c.Ctx(kBob).get(), list, &listed).ok());
+  EXPECT_EQ(listed.jobs_size(), 0);
+  ASSERT_TRUE(c.jobs().ListJobs(c.Ctx(kAlice).get(), list, &listed).ok());
+  EXPECT_GE(listed.jobs_size(), 1);
+  const std::string log = c.Log();
+  for (const char* t : {kAlice, kBob, kRoot, kWorker}) EXPECT_EQ(log.find(t), std::string::npos) << "token in log";
+}
+
+TEST(Service, RefusesAPlaintextNonLoopbackAddress) {
+  ScopedTempDir dir;
+  WriteFile(dir.path() + "/tokens.yaml", "[]\n");
+  auto r = ::graft::testing::RunCommand(BinaryDir() + "/bin/graftd --listen 0.0.0.0:0 --tokens " + dir.path() +
+                                        "/tokens.yaml --data-dir " + dir.path() + "/data");
+  EXPECT_EQ(r.exit_code, 2) << r.output;
+  EXPECT_NE(r.output.find("--allow-plaintext"), std::string::npos) << r.output;
+}
+
+// A fake worker (this test) reports points and records each acknowledgement; graftd is killed
+// with SIGKILL mid-stream, with jobs queued, running and finished. After a restart every
+// acknowledged point is stored, the finished job is intact, and every job goes on to finish.
+TEST(Service, CoordinatorKilledLosesNoAcknowledgedPoint) {
+  Cluster c(/*lease_seconds=*/3);
+  const std::string done = c.Submit(kAlice, "parcel-routing", kSmall);
+  {
+    auto worker = c.StartWorker("w0");
+    ASSERT_TRUE(c.WaitState(done, v1::JOB_STATE_SUCCEEDED, 60000)) << ReadFile(worker->log_path());
+    worker->Signal(SIGTERM);
+    EXPECT_EQ(worker->Wait(30000), 0);
+  }
+  const std::string running = c.Submit(kAlice, "parcel-routing", kSmall);
+  const std::string queued = c.Submit(kAlice, "parcel-routing", kSmall);
+  v1::RegisterWorkerRequest reg;
+  reg.set_host("fake");
+  v1::RegisterWorkerResponse me;
+  ASSERT_TRUE(c.workers().RegisterWorker(c.Ctx(kWorker).get(), reg, &me).ok());
+  v1::LeaseJobRequest lreq;
+  lreq.set_worker_id(me.worker_id());
+  lreq.set_wait_ms(1000);
+  v1::LeaseJobResponse lease;
+  ASSERT_TRUE(c.workers().LeaseJob(c.Ctx(kWorker).get(), lreq, &lease).ok());
+  ASSERT_EQ(lease.job_id(), running);
+  std::vector<int64_t> acknowledged;
+  std::atomic<bool> failed{false};
+  std::thread reporter([&] {
+    for (int64_t step = 1; step <= 100000 && !failed; ++step) {
+      v1::ReportRequest r;
+      r.set_worker_id(me.worker_id());
+      r.set_job_id(running);
+      r.set_attempt(lease.attempt());
+      r.set_step(step);
+      auto* p = r.add_points();
+      p->set_step(step);
+      p->set_metrics_json("{\"step\": " + std::to_string(step) + "}");
+      v1::ReportResponse resp;
+      grpc::Status s = c.workers().Report(c.Ctx(kWorker, 2000).get(), r, &resp);
+      if (!s.ok()) {
+        failed = true;
+        break;
+      }
+      if (resp.acknowledged_step() >= step) acknowledged.push_back(step);
+    }
+  });
+  ASSERT_TRUE(WaitFor([&] { return acknowledged.size() >= 30 || failed; }, 30000));
+  c.KillCoordinator();
+  reporter.join();
+  ASSERT_GE(acknowledged.size(), 30u);
+  c.StartCoordinator();
+  std::vector<v1::MetricPoint> stored = c.Metrics(running);
+  std::set<int64_t> steps;
+  for (const auto& p : stored) steps.insert(p.step());
+  for (int64_t s : acknowledged) EXPECT_TRUE(steps.count(s)) << "acknowledged point " << s << " lost";
+  EXPECT_EQ(c.Get(done).state(), v1::JOB_STATE_SUCCEEDED);
+  EXPECT_EQ(c.Get(queued).state(), v1::JOB_STATE_QUEUED);
+  // The fake worker is gone: its lease lapses, and a real worker finishes everything.
+  auto worker = c.StartWorker("w1");
+  EXPECT_TRUE(c.WaitState(running, v1::JOB_STATE_SUCCEEDED, 90000)) << c.Log() << ReadFile(worker->log_path());
+  EXPECT_TRUE(c.WaitState(queued, v1::JOB_STATE_SUCCEEDED, 90000)) << c.Log() << ReadFile(worker->log_path());
+  EXPECT_EQ(c.Get(running).attempt(), 2);
+  // The second attempt replaced the fake points: the history is the real run's.
+  std::vector<v1::MetricPoint> final_points = c.Metrics(running);
+  ASSERT_EQ(final_points.size(), 4u);
+  EXPECT_EQ(final_points.back().attempt(), 2);
+}
+
+// A worker killed with SIGKILL mid-job: the lease lapses, the job is leased again, the new
+// attempt resumes from a checkpoint step > 0, and its final metrics equal an uninterrupted run.
+TEST(Service, WorkerKilledMidJobResumesFromItsCheckpoint) {
+  Cluster c(/*lease_seconds=*/2);
+  const std::vector<std::string> sets = {"training.steps=3000", "training.checkpoint_every=500",
+                                         "evaluation.every=250", "evaluation.triples=512",
+                                         "network.hidden=[256,256,256]"};
+  const std::string id = c.Submit(kAlice, "parcel-routing", sets);
+  auto w1 = c.StartWorker("w1");
+  ASSERT_TRUE(WaitFor(
+      [&] {
+        v1::Job j = c.Get(id);
+        return j.checkpoint_step() >= 500 && j.step() > j.checkpoint_step();
+      },
+      120000))
+      << ReadFile(w1->log_path());
+  ASSERT_NE(c.Get(id).state(), v1::JOB_STATE_SUCCEEDED) << "finished before it could be interrupted";
+  w1->Signal(SIGKILL);
+  w1->Wait(10000);
+  auto w2 = c.StartWorker("w2");
+  ASSERT_TRUE(c.WaitState(id, v1::JOB_STATE_SUCCEEDED, 180000)) << c.Log() << ReadFile(w2->log_path());
+  v1::Job job = c.Get(id);
+  EXPECT_EQ(job.attempt(), 2);
+  const std::string w2_log = ReadFile(w2->log_path());
+  const size_t at = w2_log.find("resuming from step ");
+  ASSERT_NE(at, std::string::npos) << w2_log;
+  EXPECT_GT(std::stoll(w2_log.substr(at + 19)), 0);
+  // The same spec trained in one go, locally.
+  WriteFile(c.dir() + "/spec.yaml", job.spec_yaml());
+  auto r = ::graft::testing::RunCommand(BinaryDir() + "/bin/graft-worker run " + c.dir() + "/spec.yaml --out " +
+                                        c.dir() + "/local");
+  ASSERT_EQ(r.exit_code, 0) << r.output;
+  std::istringstream local(ReadFile(c.dir() + "/local/metrics.jsonl"));
+  std::vector<json> expected;
+  std::string line;
+  while (std::getline(local, line)) {
+    if (!line.empty()) expected.push_back(WithoutTimings(json::parse(line)));
+  }
+  std::vector<json> got;
+  for (const auto& p : c.Metrics(id)) got.push_back(WithoutTimings(json::parse(p.metrics_json())));
+  ASSERT_EQ(got.size(), expected.size());
+  for (size_t i = 0; i < got.size(); ++i) EXPECT_EQ(got[i], expected[i]) << "point " << i;
+  EXPECT_EQ(WithoutTimings(json::parse(job.result_json())),
+            WithoutTimings(json::parse(ReadFile(c.dir() + "/local/result.json"))));
+}
+
+}  // namespace
+}  // namespace graft
