@@ -10,6 +10,7 @@
 #include <sstream>
 #include <thread>
 
+#include <grpcpp/generic/generic_stub.h>
 #include <grpcpp/grpcpp.h>
 
 #include "graft/v1/graft.grpc.pb.h"
@@ -114,6 +115,7 @@ class Cluster {
   }
 
   const std::string& dir() const { return dir_.path(); }
+  std::shared_ptr<grpc::Channel> channel() { return channel_; }
   v1::Jobs::Stub& jobs() { return *jobs_; }
   v1::Workers::Stub& workers() { return *workers_; }
   std::string Log() const { return ReadFile(dir_.path() + "/graftd.log"); }
@@ -396,6 +398,15 @@ TEST(Service, RefusesAPlaintextNonLoopbackAddress) {
                                         "/tokens.yaml --data-dir " + dir.path() + "/data");
   EXPECT_EQ(r.exit_code, 2) << r.output;
   EXPECT_NE(r.output.find("--allow-plaintext"), std::string::npos) << r.output;
+  // The shipped settings file loads; a mistake in one names file:line:col and the key.
+  WriteFile(dir.path() + "/bad.yaml", "listen: 127.0.0.1:0\nlease_secs: 3\n");
+  auto bad = ::graft::testing::RunCommand(BinaryDir() + "/bin/graftd --config " + dir.path() + "/bad.yaml");
+  EXPECT_EQ(bad.exit_code, 2) << bad.output;
+  EXPECT_NE(bad.output.find("bad.yaml:2:1: unknown key 'lease_secs'"), std::string::npos) << bad.output;
+  auto shipped = ::graft::testing::RunCommand(BinaryDir() + "/bin/graftd --config " + SourceDir() +
+                                              "/configs/graftd.yaml --listen 0.0.0.0:0");
+  EXPECT_EQ(shipped.exit_code, 2) << shipped.output;  // loads, then refuses the address
+  EXPECT_NE(shipped.output.find("refusing to listen on 0.0.0.0:0"), std::string::npos) << shipped.output;
 }
 
 // A fake worker (this test) reports points and records each acknowledgement; graftd is killed
@@ -509,6 +520,127 @@ TEST(Service, WorkerKilledMidJobResumesFromItsCheckpoint) {
   for (size_t i = 0; i < got.size(); ++i) EXPECT_EQ(got[i], expected[i]) << "point " << i;
   EXPECT_EQ(WithoutTimings(json::parse(job.result_json())),
             WithoutTimings(json::parse(ReadFile(c.dir() + "/local/result.json"))));
+}
+
+// Watching a job: its state first, then each point as it is stored, then the final state, and
+// the stream ends; a second watch from a later step gets only the points from there.
+TEST(Service, WatchStreamsStateAndPointsUntilTheEnd) {
+  Cluster c;
+  const std::string id = c.Submit(kAlice, "parcel-routing", kSmall);
+  std::vector<v1::JobEvent> events;
+  grpc::Status watch_status;
+  std::thread watcher([&] {
+    v1::WatchJobRequest r;
+    r.set_job_id(id);
+    auto ctx = c.Ctx(kAlice, 90000);
+    auto reader = c.jobs().WatchJob(ctx.get(), r);
+    v1::JobEvent e;
+    while (reader->Read(&e)) events.push_back(e);
+    watch_status = reader->Finish();
+  });
+  std::this_thread::sleep_for(std::chrono::milliseconds(300));
+  auto worker = c.StartWorker("w1");
+  watcher.join();
+  ASSERT_TRUE(watch_status.ok()) << watch_status.error_message();
+  ASSERT_FALSE(events.empty());
+  ASSERT_TRUE(events.front().has_state_change());
+  EXPECT_EQ(events.front().state_change().state(), v1::JOB_STATE_QUEUED);
+  ASSERT_TRUE(events.back().has_state_change());
+  EXPECT_EQ(events.back().state_change().state(), v1::JOB_STATE_SUCCEEDED);
+  std::vector<int64_t> steps;
+  bool saw_running = false;
+  for (const auto& e : events) {
+    if (e.has_point()) steps.push_back(e.point().step());
+    if (e.has_state_change() && e.state_change().state() == v1::JOB_STATE_RUNNING) saw_running = true;
+  }
+  EXPECT_TRUE(saw_running);
+  EXPECT_EQ(steps, (std::vector<int64_t>{0, 40, 80, 120}));
+  // Resumable from a step: only the points from there, then the (final) state, then the end.
+  v1::WatchJobRequest r;
+  r.set_job_id(id);
+  r.set_from_step(80);
+  auto ctx = c.Ctx(kAlice);
+  auto reader = c.jobs().WatchJob(ctx.get(), r);
+  v1::JobEvent e;
+  std::vector<int64_t> later;
+  while (reader->Read(&e)) {
+    if (e.has_point()) later.push_back(e.point().step());
+  }
+  EXPECT_TRUE(reader->Finish().ok());
+  EXPECT_EQ(later, (std::vector<int64_t>{80, 120}));
+}
+
+// SIGTERM to a busy worker: it checkpoints, uploads, hands the job back and exits 0; the
+// hand-back is not counted as an attempt, and the next attempt resumes from that checkpoint.
+TEST(Service, SigtermHandsTheJobBackWithoutSpendingAnAttempt) {
+  Cluster c;
+  const std::string id = c.Submit(kAlice, "parcel-routing",
+                                  {"training.steps=1000000", "evaluation.every=5000", "evaluation.triples=256",
+                                   "training.checkpoint_every=1000000"});
+  auto w1 = c.StartWorker("w1");
+  ASSERT_TRUE(WaitFor([&] { return c.Get(id).step() > 0; }, 60000)) << ReadFile(w1->log_path());
+  w1->Signal(SIGTERM);
+  EXPECT_EQ(w1->Wait(60000), 0) << ReadFile(w1->log_path());
+  v1::Job job = c.Get(id);
+  EXPECT_EQ(job.state(), v1::JOB_STATE_QUEUED) << ReadFile(w1->log_path());
+  EXPECT_EQ(job.attempt(), 1);
+  EXPECT_EQ(job.max_attempts(), 4);  // 3 + the hand-back
+  EXPECT_GT(job.checkpoint_step(), 0);
+  const int64_t handed_at = job.checkpoint_step();
+  auto w2 = c.StartWorker("w2");
+  ASSERT_TRUE(WaitFor([&] { return c.Get(id).attempt() == 2 && c.Get(id).state() == v1::JOB_STATE_RUNNING; }, 30000));
+  ASSERT_TRUE(WaitFor([&] { return ReadFile(w2->log_path()).find("resuming from step") != std::string::npos; }, 30000));
+  EXPECT_NE(ReadFile(w2->log_path()).find("resuming from step " + std::to_string(handed_at)), std::string::npos)
+      << ReadFile(w2->log_path());
+  v1::CancelJobRequest cancel;
+  cancel.set_job_id(id);
+  v1::Job out;
+  EXPECT_TRUE(c.jobs().CancelJob(c.Ctx(kAlice).get(), cancel, &out).ok());
+}
+
+// Server reflection is on and needs no token: a raw ServerReflectionInfo call listing the
+// services (request field 7, list_services, hand-encoded: tag 0x3a, length 0).
+TEST(Service, ReflectionListsTheServicesWithoutAToken) {
+  Cluster c;
+  grpc::GenericStub stub(c.channel());
+  grpc::ClientContext ctx;
+  ctx.set_deadline(std::chrono::system_clock::now() + std::chrono::seconds(10));
+  grpc::CompletionQueue cq;
+  auto call = stub.PrepareCall(&ctx, "/grpc.reflection.v1alpha.ServerReflection/ServerReflectionInfo", &cq);
+  auto wait = [&](intptr_t expected) {
+    void* tag = nullptr;
+    bool ok = false;
+    EXPECT_TRUE(cq.Next(&tag, &ok));
+    EXPECT_EQ(reinterpret_cast<intptr_t>(tag), expected);
+    return ok;
+  };
+  call->StartCall(reinterpret_cast<void*>(1));
+  ASSERT_TRUE(wait(1));
+  const char request[] = {0x3a, 0x00};
+  grpc::Slice slice(request, sizeof(request));
+  grpc::ByteBuffer buffer(&slice, 1);
+  call->Write(buffer, reinterpret_cast<void*>(2));
+  ASSERT_TRUE(wait(2));
+  call->WritesDone(reinterpret_cast<void*>(3));
+  ASSERT_TRUE(wait(3));
+  grpc::ByteBuffer response;
+  call->Read(&response, reinterpret_cast<void*>(4));
+  ASSERT_TRUE(wait(4));
+  std::vector<grpc::Slice> slices;
+  ASSERT_TRUE(response.Dump(&slices).ok());
+  std::string bytes;
+  for (const auto& s : slices) bytes.append(reinterpret_cast<const char*>(s.begin()), s.size());
+  EXPECT_NE(bytes.find("graft.v1.Jobs"), std::string::npos);
+  EXPECT_NE(bytes.find("graft.v1.Workers"), std::string::npos);
+  grpc::Status status;
+  call->Finish(&status, reinterpret_cast<void*>(5));
+  wait(5);
+  EXPECT_TRUE(status.ok()) << status.error_message();
+  cq.Shutdown();
+  void* tag;
+  bool ok;
+  while (cq.Next(&tag, &ok)) {
+  }
 }
 
 }  // namespace

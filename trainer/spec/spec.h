@@ -67,6 +67,30 @@ struct EvaluationSpec {
   int64_t triples = 4096;  // evaluation triples (all distinct ones when fewer exist)
 };
 
+// The `scan:` block: candidate sites searched by `graft-worker scan` (and by `run` after
+// training when the block is present). For each aligned variable alone, every listed layer x
+// contiguous unit blocks is evaluated on held-out triples, optionally plus random unit subsets.
+struct ScanSpec {
+  bool present = false;         // the config has a `scan:` block
+  std::vector<int> layers;      // layers to search; empty (default): every hidden layer
+  int block = 0;                // units per candidate; 0 (default): the variable's aligned unit count
+  int stride = 0;               // step between block starts; 0 (default): the block size
+  int random_subsets = 0;       // extra candidates per layer: random unit sets of the block size
+  int64_t triples = 1024;       // budget: evaluation triples per candidate (trade-off: time vs interval width)
+};
+
+// The `das:` block: distributed alignment search (Geiger, Wu et al. 2023) with the network
+// frozen. Every aligned variable gets `dims` consecutive dimensions of a learned rotation of
+// one layer; run by `graft-worker das` (and by `run` after training when the block is present).
+struct DasSpec {
+  bool present = false;     // the config has a `das:` block
+  int layer = -1;           // the rotated layer; -1 (default): the layer all aligned variables share
+  int dims = 0;             // rotated dimensions per variable; 0 (default): the aligned unit count
+  int64_t steps = 400;      // optimiser steps of the rotation
+  double lr = 0.01;         // Adam learning rate of the rotation's skew-symmetric generator
+  int batch_size = 256;     // base inputs per step (sources: a permutation of the batch)
+};
+
 struct JobSpec {
   std::string name;
   uint64_t seed = 0;
@@ -75,6 +99,8 @@ struct JobSpec {
   std::vector<SiteSpec> alignment;  // in the order written
   TrainingSpec training;
   EvaluationSpec evaluation;
+  ScanSpec scan;
+  DasSpec das;
 };
 
 // One intervention set, resolved.
