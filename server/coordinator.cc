@@ -9,6 +9,7 @@
 #include "absl/strings/str_cat.h"
 #include "spdlog/spdlog.h"
 #include "trainer/spec/spec.h"
+#include "trainer/spec/sweep.h"
 
 namespace graft::server {
 namespace {
@@ -140,6 +141,7 @@ v1::Job Coordinator::ToProto(const JobRecord& j, bool with_texts) {
   p.set_error(j.error);
   p.set_worker_id(j.worker_id);
   p.set_checkpoint_step(j.checkpoint_step);
+  p.set_sweep_id(j.sweep_id);
   return p;
 }
 
@@ -156,7 +158,7 @@ absl::StatusOr<JobRecord> Coordinator::LoadVisible(const Principal& who, const s
   return job;
 }
 
-absl::StatusOr<std::string> Coordinator::Submit(const Principal& who, const v1::SubmitJobRequest& request) {
+absl::StatusOr<v1::SubmitJobResponse> Coordinator::Submit(const Principal& who, const v1::SubmitJobRequest& request) {
   if (static_cast<int64_t>(request.config_yaml().size()) > options_.max_config_bytes) {
     return absl::ResourceExhaustedError(absl::StrCat("the config is ", request.config_yaml().size(),
                                                      " bytes; this coordinator accepts at most ",
@@ -164,34 +166,51 @@ absl::StatusOr<std::string> Coordinator::Submit(const Principal& who, const v1::
   }
   const std::string source = request.source_name().empty() ? "config.yaml" : request.source_name();
   std::vector<std::string> overrides(request.overrides().begin(), request.overrides().end());
-  auto job = spec::LoadJobFromText(request.config_yaml(), source, overrides);
-  if (!job.ok()) {
-    if (absl::IsInvalidArgument(job.status())) return job.status();
-    return absl::InvalidArgumentError(job.status().message());
+  // The whole sweep is validated before anything is stored.
+  auto plan = spec::PlanFromText(request.config_yaml(), source, overrides, options_.max_sweep_jobs);
+  if (!plan.ok()) {
+    if (absl::IsInvalidArgument(plan.status()) || absl::IsResourceExhausted(plan.status())) return plan.status();
+    return absl::InvalidArgumentError(plan.status().message());
   }
-  JobRecord r;
-  r.name = job->spec.name;
-  r.owner = who.name;
-  r.state = JobState::kQueued;
-  r.priority = request.priority();
-  for (const auto& [k, v] : request.labels()) r.labels[k] = v;
-  r.max_attempts = options_.max_attempts;
-  r.submitted_ms = clock_->NowMs();
-  r.total_steps = job->spec.training.steps;
-  r.spec_yaml = spec::ResolvedSpecYaml(job->spec);
+  std::vector<JobRecord> records;
+  for (const spec::PlannedJob& p : plan->jobs) {
+    JobRecord r;
+    r.name = p.name;
+    r.owner = who.name;
+    r.state = JobState::kQueued;
+    r.priority = request.priority();
+    for (const auto& [k, v] : request.labels()) r.labels[k] = v;
+    r.max_attempts = options_.max_attempts;
+    r.submitted_ms = clock_->NowMs();
+    r.total_steps = p.job.spec.training.steps;
+    r.spec_yaml = spec::ResolvedSpecYaml(p.job.spec);
+    records.push_back(std::move(r));
+  }
   Deferred deferred;
-  std::string id;
+  v1::SubmitJobResponse out;
   {
     std::lock_guard<std::mutex> lock(mu_);
-    auto stored = store_->InsertJob(r);
-    if (!stored.ok()) return stored.status();
-    r.id = *stored;
-    id = JobName(r.id);
-    log_->info("job {} attempt 0: queued ({} by {}, priority {})", id, r.name, r.owner, r.priority);
+    std::vector<int64_t> ids;
+    if (plan->is_sweep) {
+      auto stored = store_->InsertSweep(records);
+      if (!stored.ok()) return stored.status();
+      ids = *stored;
+      out.set_sweep_id(absl::StrCat("s-", ids.front()));
+    } else {
+      auto stored = store_->InsertJob(records.front());
+      if (!stored.ok()) return stored.status();
+      ids.push_back(*stored);
+    }
+    out.set_job_id(JobName(ids.front()));
+    for (size_t i = 0; i < ids.size(); ++i) {
+      out.add_job_ids(JobName(ids[i]));
+      log_->info("job {} attempt 0: queued ({} by {}, priority {}{})", JobName(ids[i]), records[i].name, who.name,
+                 request.priority(), plan->is_sweep ? ", sweep " + out.sweep_id() : "");
+    }
     ServeWaiters(deferred);
   }
   for (auto& f : deferred) f();
-  return id;
+  return out;
 }
 
 absl::StatusOr<v1::Job> Coordinator::Get(const Principal& who, const std::string& job_id) {
@@ -302,6 +321,7 @@ absl::StatusOr<v1::ServerInfo> Coordinator::Info() {
   info.set_version(GRAFT_VERSION_STRING);
   info.set_data_dir(options_.data_dir);
   info.set_lease_seconds(options_.lease_ms / 1000);
+  info.set_max_sweep_jobs(options_.max_sweep_jobs);
   {
     std::lock_guard<std::mutex> lock(mu_);
     auto counts = store_->CountByState();
@@ -328,25 +348,122 @@ absl::StatusOr<v1::ServerInfo> Coordinator::Info() {
   return info;
 }
 
-void Coordinator::Publish(int64_t job_id, const v1::JobEvent& event, bool final_state, Deferred& deferred) {
+void Coordinator::Publish(const JobRecord& job, const v1::JobEvent& event, bool final_state, Deferred& deferred) {
+  bool sweep_state_checked = false, sweep_over = false;
   for (auto it = watchers_.begin(); it != watchers_.end();) {
-    if (it->second.job_id != job_id) {
+    Watcher& w = it->second;
+    if (w.job_id == job.id) {
+      WatchSink sink = w.sink;
+      deferred.push_back([sink, event, final_state] {
+        sink(event, false);
+        if (final_state) sink(v1::JobEvent(), true);
+      });
+      it = final_state ? watchers_.erase(it) : std::next(it);
+    } else if (!job.sweep_id.empty() && w.sweep_id == job.sweep_id) {
+      if (final_state && !sweep_state_checked) {
+        sweep_over = SweepOver(job.sweep_id);
+        sweep_state_checked = true;
+      }
+      SweepSink sink = w.sweep_sink;
+      v1::SweepEvent se;
+      se.set_job_id(JobName(job.id));
+      *se.mutable_event() = event;
+      const bool over = sweep_over;
+      deferred.push_back([sink, se, over] {
+        sink(se, false);
+        if (over) sink(v1::SweepEvent(), true);
+      });
+      it = over ? watchers_.erase(it) : std::next(it);
+    } else {
       ++it;
-      continue;
     }
-    WatchSink sink = it->second.sink;
-    deferred.push_back([sink, event, final_state] {
-      sink(event, false);
-      if (final_state) sink(v1::JobEvent(), true);
-    });
-    it = final_state ? watchers_.erase(it) : std::next(it);
   }
+}
+
+bool Coordinator::SweepOver(const std::string& sweep_id) {
+  JobFilter filter;
+  filter.sweep_id = sweep_id;
+  auto jobs = store_->ListJobs(filter, 0, 1 << 30);
+  if (!jobs.ok()) return false;
+  for (const auto& j : *jobs) {
+    if (!IsFinal(j.state)) return false;
+  }
+  return true;
+}
+
+absl::StatusOr<std::vector<JobRecord>> Coordinator::SweepJobs(const Principal& who, const std::string& sweep_id) {
+  JobFilter filter;
+  filter.sweep_id = sweep_id;
+  auto jobs = store_->ListJobs(filter, 0, 1 << 30);
+  if (!jobs.ok()) return jobs.status();
+  if (jobs->empty() || (who.role != Role::kAdmin && jobs->front().owner != who.name)) {
+    return absl::NotFoundError(absl::StrCat("no sweep ", sweep_id));
+  }
+  std::reverse(jobs->begin(), jobs->end());  // expansion order
+  return jobs;
+}
+
+absl::StatusOr<int64_t> Coordinator::WatchSweep(const Principal& who, const std::string& sweep_id, int64_t from_step,
+                                                SweepSink sink) {
+  Deferred deferred;
+  int64_t id;
+  {
+    std::lock_guard<std::mutex> lock(mu_);
+    auto jobs = SweepJobs(who, sweep_id);
+    if (!jobs.ok()) return jobs.status();
+    std::vector<v1::SweepEvent> initial;
+    bool over = true;
+    for (const JobRecord& job : *jobs) {
+      if (!IsFinal(job.state)) over = false;
+      v1::SweepEvent state;
+      state.set_job_id(JobName(job.id));
+      *state.mutable_event()->mutable_state_change() = ToProto(job, false);
+      initial.push_back(state);
+      auto points = store_->Points(job.id, std::max<int64_t>(0, from_step));
+      if (!points.ok()) return points.status();
+      for (const auto& p : *points) {
+        v1::SweepEvent e;
+        e.set_job_id(JobName(job.id));
+        e.mutable_event()->mutable_point()->set_step(p.step);
+        e.mutable_event()->mutable_point()->set_attempt(p.attempt);
+        e.mutable_event()->mutable_point()->set_metrics_json(p.metrics_json);
+        initial.push_back(std::move(e));
+      }
+    }
+    id = next_watch_id_++;
+    if (!over) watchers_[id] = Watcher{0, sweep_id, nullptr, sink};
+    deferred.push_back([sink, initial, over] {
+      for (const auto& e : initial) sink(e, false);
+      if (over) sink(v1::SweepEvent(), true);
+    });
+  }
+  for (auto& f : deferred) f();
+  return id;
+}
+
+absl::StatusOr<v1::CancelSweepResponse> Coordinator::CancelSweep(const Principal& who, const std::string& sweep_id,
+                                                                 const std::string& reason) {
+  std::vector<std::string> ids;
+  {
+    std::lock_guard<std::mutex> lock(mu_);
+    auto jobs = SweepJobs(who, sweep_id);
+    if (!jobs.ok()) return jobs.status();
+    for (const auto& j : *jobs) {
+      if (!IsFinal(j.state)) ids.push_back(JobName(j.id));
+    }
+  }
+  v1::CancelSweepResponse out;
+  for (const auto& id : ids) {
+    auto job = Cancel(who, id, reason);
+    if (job.ok()) *out.add_jobs() = *job;  // a job that ended meanwhile is skipped
+  }
+  return out;
 }
 
 void Coordinator::PublishState(const JobRecord& job, Deferred& deferred) {
   v1::JobEvent e;
   *e.mutable_state_change() = ToProto(job, false);
-  Publish(job.id, e, IsFinal(job.state), deferred);
+  Publish(job, e, IsFinal(job.state), deferred);
 }
 
 absl::StatusOr<int64_t> Coordinator::Watch(const Principal& who, const std::string& job_id, int64_t from_step,
@@ -372,7 +489,7 @@ absl::StatusOr<int64_t> Coordinator::Watch(const Principal& who, const std::stri
     }
     const bool over = IsFinal(job->state);
     id = next_watch_id_++;
-    if (!over) watchers_[id] = Watcher{job->id, sink};
+    if (!over) watchers_[id] = Watcher{job->id, "", sink, nullptr};
     // Delivered before any later event: deferred callbacks run in order, and later events are
     // published under mu_ after this point.
     deferred.push_back([sink, initial, over] {
@@ -429,7 +546,7 @@ absl::StatusOr<v1::LeaseJobResponse> Coordinator::Leased(JobRecord job, Deferred
     v1::JobEvent e;
     e.mutable_rewind()->set_from_step(from);
     e.mutable_rewind()->set_attempt(job.attempt);
-    Publish(job.id, e, false, deferred);
+    Publish(job, e, false, deferred);
   }
   job.step = resume;
   absl::Status st = store_->UpdateJob(job);
@@ -537,7 +654,7 @@ absl::StatusOr<v1::ReportResponse> Coordinator::Report(const v1::ReportRequest& 
         e.mutable_point()->set_step(p.step);
         e.mutable_point()->set_attempt(p.attempt);
         e.mutable_point()->set_metrics_json(p.metrics_json);
-        Publish(job->id, e, false, deferred);
+        Publish(*job, e, false, deferred);
       }
     }
     out.set_acknowledged_step(acknowledged_[job->id]);

@@ -41,6 +41,7 @@ struct CoordinatorOptions {
   int64_t lease_ms = 30000;               // a worker must report within this
   int max_attempts = 3;                   // leases a job may use before it fails
   int64_t max_config_bytes = 1 << 20;     // larger submissions are refused
+  int64_t max_sweep_jobs = 1000;          // larger sweeps are refused before anything is stored
   int64_t max_artifact_bytes = int64_t{4} << 30;
   int64_t sweep_interval_ms = 200;        // how often lapsed leases and long polls are checked
 };
@@ -78,10 +79,14 @@ class Coordinator {
   void Shutdown();
 
   // --- people and scripts
-  absl::StatusOr<std::string> Submit(const Principal& who, const v1::SubmitJobRequest& request);
+  absl::StatusOr<v1::SubmitJobResponse> Submit(const Principal& who, const v1::SubmitJobRequest& request);
   absl::StatusOr<v1::Job> Get(const Principal& who, const std::string& job_id);
   absl::StatusOr<v1::ListJobsResponse> List(const Principal& who, const v1::ListJobsRequest& request);
   absl::StatusOr<v1::Job> Cancel(const Principal& who, const std::string& job_id, const std::string& reason);
+  // Cancels every job of the sweep that has not ended; NotFound for an unknown (or another
+  // user's) sweep.
+  absl::StatusOr<v1::CancelSweepResponse> CancelSweep(const Principal& who, const std::string& sweep_id,
+                                                      const std::string& reason);
   absl::StatusOr<std::vector<v1::MetricPoint>> Metrics(const Principal& who, const std::string& job_id);
   // The stored artifact's record (its bytes are in record.path).
   absl::StatusOr<ArtifactRecord> Artifact(const Principal& who, const std::string& job_id, const std::string& name);
@@ -93,6 +98,11 @@ class Coordinator {
   using WatchSink = std::function<void(const v1::JobEvent& event, bool done)>;
   absl::StatusOr<int64_t> Watch(const Principal& who, const std::string& job_id, int64_t from_step, WatchSink sink);
   void Unwatch(int64_t watch_id);
+  // The same for every job of a sweep: each event tagged with its job id; `done` once every
+  // job has ended.
+  using SweepSink = std::function<void(const v1::SweepEvent& event, bool done)>;
+  absl::StatusOr<int64_t> WatchSweep(const Principal& who, const std::string& sweep_id, int64_t from_step,
+                                     SweepSink sink);
 
   // --- workers (the caller has already checked the worker role)
   absl::StatusOr<v1::RegisterWorkerResponse> Register(const Principal& who, const v1::RegisterWorkerRequest& request);
@@ -113,8 +123,10 @@ class Coordinator {
     LeaseDone done;
   };
   struct Watcher {
-    int64_t job_id;
+    int64_t job_id;       // a job watch, or 0
+    std::string sweep_id; // a sweep watch, or ""
     WatchSink sink;
+    SweepSink sweep_sink;
   };
   using Deferred = std::vector<std::function<void()>>;  // callbacks to run after unlocking
 
@@ -122,7 +134,10 @@ class Coordinator {
   absl::StatusOr<JobRecord> LoadLeased(const std::string& job_id, const std::string& worker_id, int32_t attempt,
                                        bool allow_cancelled);  // REQUIRES: mu_
   v1::Job ToProto(const JobRecord& job, bool with_texts);
-  void Publish(int64_t job_id, const v1::JobEvent& event, bool final_state, Deferred& deferred);  // REQUIRES: mu_
+  void Publish(const JobRecord& job, const v1::JobEvent& event, bool final_state, Deferred& deferred);  // REQUIRES: mu_
+  // True when every job of the sweep has ended. REQUIRES: mu_
+  bool SweepOver(const std::string& sweep_id);
+  absl::StatusOr<std::vector<JobRecord>> SweepJobs(const Principal& who, const std::string& sweep_id);  // REQUIRES: mu_
   void PublishState(const JobRecord& job, Deferred& deferred);                                    // REQUIRES: mu_
   // Leases queued jobs to waiting workers. REQUIRES: mu_
   void ServeWaiters(Deferred& deferred);

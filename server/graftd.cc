@@ -48,6 +48,7 @@ int RunGraftd(const GraftdConfig& config, const std::atomic<bool>* stop) {
   options.lease_ms = config.lease_seconds * 1000;
   options.max_attempts = config.max_attempts;
   options.max_config_bytes = config.max_config_bytes;
+  options.max_sweep_jobs = config.max_sweep_jobs;
   auto clock = CreateSystemClock();
   Coordinator coordinator(std::move(*store), options, clock.get(), log);
   absl::Status st = coordinator.Start();

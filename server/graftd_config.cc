@@ -16,7 +16,8 @@ absl::Status LoadGraftdConfig(const std::string& path, GraftdConfig* config) {
   if (tree->IsNull()) return absl::OkStatus();
   if (!tree->IsMap()) return absl::InvalidArgumentError(absl::StrCat(tree->loc.ToString(), ": expected a map of settings"));
   const std::vector<std::string> keys = {"listen",       "data_dir",         "tokens_file", "lease_seconds",
-                                         "max_attempts", "max_config_bytes", "durability",  "allow_plaintext"};
+                                         "max_attempts", "max_config_bytes", "durability",  "allow_plaintext",
+                                         "max_sweep_jobs"};
   std::vector<std::string> errors;
   auto whole = [&](const spec::ConfigNode& v, const std::string& key, int64_t lo, int64_t hi, int64_t* out) {
     char* end = nullptr;
@@ -44,6 +45,8 @@ absl::Status LoadGraftdConfig(const std::string& path, GraftdConfig* config) {
       config->max_attempts = static_cast<int>(x);
     } else if (key == "max_config_bytes") {
       whole(v, key, 1024, int64_t{1} << 30, &config->max_config_bytes);
+    } else if (key == "max_sweep_jobs") {
+      whole(v, key, 1, 1000000, &config->max_sweep_jobs);
     } else if (key == "durability") {
       if (v.IsScalar() && v.scalar == "normal") {
         config->durability = Durability::kNormal;

@@ -18,6 +18,7 @@ struct GraftdConfig {
   int64_t lease_seconds = 30;              // a worker must report within this
   int max_attempts = 3;                    // leases per job before it fails
   int64_t max_config_bytes = 1 << 20;      // larger submissions are refused
+  int64_t max_sweep_jobs = 1000;           // larger sweeps are refused before anything is stored
   Durability durability = Durability::kNormal;  // normal: survives a killed process; full: power loss
   bool allow_plaintext = false;            // needed for a non-loopback listen address (no TLS yet)
   std::string port_file;                   // if set, the bound port is written here once listening

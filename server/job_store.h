@@ -86,6 +86,9 @@ class JobStore {
 
   // Stores a new job (id ignored) and returns its id.
   virtual absl::StatusOr<int64_t> InsertJob(const JobRecord& job) = 0;
+  // Stores the jobs of one sweep in one transaction (all or none); each gets sweep_id
+  // "s-<id of the first job>". Returns the ids in order. REQUIRES: jobs not empty.
+  virtual absl::StatusOr<std::vector<int64_t>> InsertSweep(const std::vector<JobRecord>& jobs) = 0;
   // NotFound when there is no such job.
   virtual absl::StatusOr<JobRecord> GetJob(int64_t id) = 0;
   // Jobs matching `filter` with id < before_id (0: no bound), newest (highest id) first, at most

@@ -14,7 +14,7 @@ int main(int argc, char** argv) {
   CLI::App app{"graftd: the graft coordinator (jobs, leases, metrics, artifacts over gRPC)"};
   graft::server::GraftdConfig config;
   std::string config_file, listen, data_dir, tokens, durability;
-  int64_t lease_seconds = 0, max_config_bytes = 0;
+  int64_t lease_seconds = 0, max_config_bytes = 0, max_sweep_jobs = 0;
   int max_attempts = 0;
   bool allow_plaintext = false;
   app.add_option("--config", config_file, "YAML settings file (e.g. configs/graftd.yaml)");
@@ -24,6 +24,7 @@ int main(int argc, char** argv) {
   app.add_option("--lease-seconds", lease_seconds, "a worker must report within this many seconds (default 30)");
   app.add_option("--max-attempts", max_attempts, "leases per job before it fails (default 3)");
   app.add_option("--max-config-bytes", max_config_bytes, "largest config accepted (default 1048576)");
+  app.add_option("--max-sweep-jobs", max_sweep_jobs, "largest sweep accepted (default 1000)");
   app.add_option("--durability", durability, "normal (survives a killed process) | full (also power loss)");
   app.add_flag("--allow-plaintext", allow_plaintext, "allow a non-loopback listen address without TLS");
   app.add_option("--port-file", config.port_file, "write the bound port to this file once listening");
@@ -42,6 +43,7 @@ int main(int argc, char** argv) {
   if (lease_seconds > 0) config.lease_seconds = lease_seconds;
   if (max_attempts > 0) config.max_attempts = max_attempts;
   if (max_config_bytes > 0) config.max_config_bytes = max_config_bytes;
+  if (max_sweep_jobs > 0) config.max_sweep_jobs = max_sweep_jobs;
   if (allow_plaintext) config.allow_plaintext = true;
   if (!durability.empty()) {
     if (durability != "normal" && durability != "full") {

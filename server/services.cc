@@ -77,17 +77,19 @@ class FileWriter : public grpc::ServerWriteReactor<v1::ArtifactChunk> {
   bool done_ = false;
 };
 
-// A watch: events from the coordinator are queued and written one at a time. The queue lives
-// in a shared block so that an event delivered after the call ended finds no reactor instead
-// of a deleted one.
-class WatchWriter : public grpc::ServerWriteReactor<v1::JobEvent> {
+// A watch stream: events from the coordinator are queued and written one at a time. The queue
+// lives in a block shared with the coordinator's sink, so that an event delivered after the
+// call ended finds no reactor instead of a deleted one.
+template <typename Event>
+class StreamWriter : public grpc::ServerWriteReactor<Event> {
  public:
-  WatchWriter(Coordinator* coordinator, const Principal& who, const v1::WatchJobRequest& request)
+  using Sink = std::function<void(const Event&, bool)>;
+  // `subscribe` registers a sink with the coordinator and returns the watch id.
+  StreamWriter(Coordinator* coordinator, const std::function<absl::StatusOr<int64_t>(Sink)>& subscribe)
       : coordinator_(coordinator), shared_(std::make_shared<Shared>()) {
     shared_->reactor = this;
     std::shared_ptr<Shared> shared = shared_;
-    auto id = coordinator->Watch(who, request.job_id(), request.from_step(),
-                                 [shared](const v1::JobEvent& e, bool done) { Push(shared, e, done); });
+    auto id = subscribe([shared](const Event& e, bool done) { Push(shared, e, done); });
     std::lock_guard<std::mutex> lock(shared_->mu);
     if (!id.ok()) {
       EndLocked(ToGrpc(id.status()));
@@ -123,12 +125,12 @@ class WatchWriter : public grpc::ServerWriteReactor<v1::JobEvent> {
  private:
   struct Shared {
     std::mutex mu;
-    WatchWriter* reactor = nullptr;  // guarded by mu; null once the call is done
-    std::deque<v1::JobEvent> queue;  // guarded by mu; the front is in flight while writing
+    StreamWriter* reactor = nullptr;  // guarded by mu; null once the call is done
+    std::deque<Event> queue;          // guarded by mu; the front is in flight while writing
     bool writing = false, done = false, finished = false, registered = false;  // guarded by mu
   };
 
-  static void Push(const std::shared_ptr<Shared>& shared, const v1::JobEvent& e, bool done) {
+  static void Push(const std::shared_ptr<Shared>& shared, const Event& e, bool done) {
     std::lock_guard<std::mutex> lock(shared->mu);
     if (shared->reactor == nullptr) return;
     if (done) {
@@ -143,7 +145,7 @@ class WatchWriter : public grpc::ServerWriteReactor<v1::JobEvent> {
     if (shared_->finished || shared_->writing) return;
     if (!shared_->queue.empty()) {
       shared_->writing = true;
-      StartWrite(&shared_->queue.front());
+      this->StartWrite(&shared_->queue.front());
     } else if (shared_->done) {
       EndLocked(grpc::Status::OK);
     }
@@ -152,7 +154,7 @@ class WatchWriter : public grpc::ServerWriteReactor<v1::JobEvent> {
   void EndLocked(const grpc::Status& status) {
     if (shared_->finished) return;
     shared_->finished = true;
-    Finish(status);
+    this->Finish(status);
   }
 
   Coordinator* coordinator_;
@@ -222,9 +224,9 @@ class JobsImpl : public v1::Jobs::CallbackService {
                                       v1::SubmitJobResponse* resp) override {
     auto who = Check(*t_, ctx, server::Service::kJobs);
     if (!who.ok()) return Reply(ctx, who.status());
-    auto id = c_->Submit(*who, *req);
-    if (id.ok()) resp->set_job_id(*id);
-    return Reply(ctx, id.status());
+    auto out = c_->Submit(*who, *req);
+    if (out.ok()) *resp = *out;
+    return Reply(ctx, out.status());
   }
   grpc::ServerUnaryReactor* GetJob(grpc::CallbackServerContext* ctx, const v1::GetJobRequest* req,
                                    v1::Job* resp) override {
@@ -260,7 +262,31 @@ class JobsImpl : public v1::Jobs::CallbackService {
       };
       return new Refused(who.status());
     }
-    return new WatchWriter(c_, *who, *req);
+    return new StreamWriter<v1::JobEvent>(c_, [&](Coordinator::WatchSink sink) {
+      return c_->Watch(*who, req->job_id(), req->from_step(), std::move(sink));
+    });
+  }
+  grpc::ServerWriteReactor<v1::SweepEvent>* WatchSweep(grpc::CallbackServerContext* ctx,
+                                                       const v1::WatchSweepRequest* req) override {
+    auto who = Check(*t_, ctx, server::Service::kJobs);
+    if (!who.ok()) {
+      struct Refused : grpc::ServerWriteReactor<v1::SweepEvent> {
+        explicit Refused(const absl::Status& s) { Finish(ToGrpc(s)); }
+        void OnDone() override { delete this; }
+      };
+      return new Refused(who.status());
+    }
+    return new StreamWriter<v1::SweepEvent>(c_, [&](Coordinator::SweepSink sink) {
+      return c_->WatchSweep(*who, req->sweep_id(), req->from_step(), std::move(sink));
+    });
+  }
+  grpc::ServerUnaryReactor* CancelSweep(grpc::CallbackServerContext* ctx, const v1::CancelSweepRequest* req,
+                                        v1::CancelSweepResponse* resp) override {
+    auto who = Check(*t_, ctx, server::Service::kJobs);
+    if (!who.ok()) return Reply(ctx, who.status());
+    auto out = c_->CancelSweep(*who, req->sweep_id(), req->reason());
+    if (out.ok()) *resp = *out;
+    return Reply(ctx, out.status());
   }
   grpc::ServerUnaryReactor* GetMetrics(grpc::CallbackServerContext* ctx, const v1::GetMetricsRequest* req,
                                        v1::GetMetricsResponse* resp) override {

@@ -207,6 +207,7 @@ class SqliteJobStore final : public JobStore {
   absl::Status Initialise(Durability durability);
 
   absl::StatusOr<int64_t> InsertJob(const JobRecord& job) override;
+  absl::StatusOr<std::vector<int64_t>> InsertSweep(const std::vector<JobRecord>& jobs) override;
   absl::StatusOr<JobRecord> GetJob(int64_t id) override;
   absl::StatusOr<std::vector<JobRecord>> ListJobs(const JobFilter& filter, int64_t before_id,
                                                   int limit) override;
@@ -508,6 +509,44 @@ absl::StatusOr<int64_t> SqliteJobStore::InsertJob(const JobRecord& job) {
   st = stmt->Run();
   if (!st.ok()) return st;
   return static_cast<int64_t>(sqlite3_last_insert_rowid(db_));
+}
+
+absl::StatusOr<std::vector<int64_t>> SqliteJobStore::InsertSweep(const std::vector<JobRecord>& jobs) {
+  if (jobs.empty()) return absl::InvalidArgumentError("InsertSweep: no jobs");
+  std::lock_guard<std::mutex> lock(mu_);
+  absl::Status st = Begin(/*immediate=*/true, "InsertSweep");
+  if (!st.ok()) return st;
+  ScopedTransaction txn(this);
+  std::vector<int64_t> ids;
+  std::string sweep_id;
+  for (const JobRecord& job : jobs) {
+    absl::StatusOr<Statement> stmt = Prepare(
+        "INSERT INTO jobs (name, owner, state, priority, labels_json, attempt, max_attempts, submitted_ms, "
+        "started_ms, finished_ms, total_steps, step, spec_yaml, result_json, error, worker_id, "
+        "lease_expires_ms, checkpoint_step, sweep_id) "
+        "VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14, ?15, ?16, ?17, ?18, ?19)",
+        "InsertSweep");
+    if (!stmt.ok()) return stmt.status();
+    JobRecord copy = job;
+    copy.sweep_id = sweep_id;
+    st = BindJobFields(*stmt, copy);
+    if (!st.ok()) return st;
+    st = stmt->Run();
+    if (!st.ok()) return st;
+    ids.push_back(static_cast<int64_t>(sqlite3_last_insert_rowid(db_)));
+    if (sweep_id.empty()) {
+      sweep_id = absl::StrCat("s-", ids.front());
+      absl::StatusOr<Statement> upd = Prepare("UPDATE jobs SET sweep_id = ?1 WHERE id = ?2", "InsertSweep: name");
+      if (!upd.ok()) return upd.status();
+      upd->BindText(1, sweep_id);
+      upd->BindInt(2, ids.front());
+      st = upd->Run();
+      if (!st.ok()) return st;
+    }
+  }
+  st = txn.Commit("InsertSweep");
+  if (!st.ok()) return st;
+  return ids;
 }
 
 absl::StatusOr<JobRecord> SqliteJobStore::GetJob(int64_t id) {

@@ -1,0 +1,47 @@
+// Sweeps: a config's `sweep:` block expands into many jobs, the cartesian product of its grid
+// axes, its `together` axes (keys that vary in step), its random `sample` draws and its seeds.
+// The whole sweep is validated before anything is stored; one bad combination rejects it,
+// naming the combination. Torch-free. Thread-safety: pure functions.
+#ifndef GRAFT_TRAINER_SPEC_SWEEP_H_
+#define GRAFT_TRAINER_SPEC_SWEEP_H_
+
+#include <cstdint>
+#include <string>
+#include <utility>
+#include <vector>
+
+#include "absl/status/statusor.h"
+#include "trainer/spec/config_tree.h"
+#include "trainer/spec/spec.h"
+
+namespace graft::spec {
+
+struct PlannedJob {
+  // The job's name: the config's name, then the varied values (last key segment = value,
+  // comma-separated), then seed=N; e.g. "parcel-routing/interchange=0,layer=1/seed=2".
+  std::string name;
+  std::vector<std::pair<std::string, std::string>> varied;  // full key path -> value, in axis order
+  ResolvedJob job;  // validated, with spec.name set to `name` for sweep members
+};
+
+struct SweepPlan {
+  bool is_sweep = false;          // false: the config had no sweep block; jobs has one entry
+  std::vector<PlannedJob> jobs;   // in expansion order: grid (first axis slowest), together, sample, seeds
+};
+
+// Expands a parsed config (overrides already applied). Fails with InvalidArgument naming the
+// location of a mistake in the sweep block, or "sweep combination K of N (k=v,...): <error>"
+// for the first combination that does not validate; ResourceExhausted when the sweep would make
+// more than `max_jobs` jobs (checked before any combination is resolved).
+absl::StatusOr<SweepPlan> ExpandConfig(const ConfigNode& root, int64_t max_jobs);
+
+// Parses text, applies overrides (`--set #N`), and expands.
+absl::StatusOr<SweepPlan> PlanFromText(const std::string& text, const std::string& source,
+                                       const std::vector<std::string>& overrides, int64_t max_jobs);
+
+// A short summary of a plan for `check`: the number of jobs and their names.
+std::string SummarizePlan(const SweepPlan& plan);
+
+}  // namespace graft::spec
+
+#endif  // GRAFT_TRAINER_SPEC_SWEEP_H_
