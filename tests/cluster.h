@@ -1,0 +1,136 @@
+// A coordinator (graftd) started as a real process on a loopback port it picks, with its own
+// data dir and tokens, plus helpers to start workers and call the API. For integration tests.
+// Not thread-safe: use from one test thread (stubs may be used from several).
+#ifndef GRAFT_TESTS_CLUSTER_H_
+#define GRAFT_TESTS_CLUSTER_H_
+
+#include <chrono>
+#include <fstream>
+#include <memory>
+#include <sstream>
+#include <string>
+#include <tuple>
+#include <vector>
+
+#include <grpcpp/grpcpp.h>
+
+#include "graft/v1/graft.grpc.pb.h"
+#include "gtest/gtest.h"
+#include "server/auth.h"
+#include "tests/test_util.h"
+
+namespace graft::testing {
+
+// Tokens of the test cluster: two users, an admin and a worker.
+inline constexpr char kAlice[] = "alice-token-3f9c";
+inline constexpr char kBob[] = "bob-token-77a1";
+inline constexpr char kRoot[] = "root-token-c0de";
+inline constexpr char kWorker[] = "worker-token-5e5e";
+
+// A coordinator with its own data dir and tokens, on a port it picks.
+class Cluster {
+ public:
+  explicit Cluster(int lease_seconds = 30, std::vector<std::string> extra_flags = {}) : lease_seconds_(lease_seconds), extra_flags_(std::move(extra_flags)) {
+    std::ostringstream tokens;
+    for (auto [token, name, role] : {std::tuple{kAlice, "alice", "user"}, std::tuple{kBob, "bob", "user"},
+                                     std::tuple{kRoot, "root", "admin"}, std::tuple{kWorker, "node1", "worker"}}) {
+      tokens << "- {name: " << name << ", role: " << role << ", sha256: " << server::Sha256Hex(token) << "}\n";
+    }
+    WriteFile(dir_.path() + "/tokens.yaml", tokens.str());
+    WriteFile(dir_.path() + "/worker.token", std::string(kWorker) + "\n");
+    StartCoordinator();
+  }
+
+  void StartCoordinator() {
+    std::remove((dir_.path() + "/port").c_str());
+    std::vector<std::string> argv = {BinaryDir() + "/bin/graftd", "--listen", "127.0.0.1:" + std::to_string(port_),
+                                     "--data-dir", dir_.path() + "/data", "--tokens", dir_.path() + "/tokens.yaml",
+                                     "--lease-seconds", std::to_string(lease_seconds_), "--port-file",
+                                     dir_.path() + "/port"};
+    argv.insert(argv.end(), extra_flags_.begin(), extra_flags_.end());
+    graftd_ = std::make_unique<ScopedProcess>(argv, dir_.path() + "/graftd.log");
+    ASSERT_TRUE(WaitFor([&] { return !ReadPort().empty(); }, 20000)) << ReadFile(dir_.path() + "/graftd.log");
+    port_ = std::stoi(ReadPort());
+    channel_ = grpc::CreateChannel("127.0.0.1:" + std::to_string(port_), grpc::InsecureChannelCredentials());
+    jobs_ = v1::Jobs::NewStub(channel_);
+    workers_ = v1::Workers::NewStub(channel_);
+  }
+  void KillCoordinator() {
+    graftd_->Signal(SIGKILL);
+    graftd_->Wait(10000);
+  }
+
+  std::unique_ptr<ScopedProcess> StartWorker(const std::string& name) {
+    return std::make_unique<ScopedProcess>(
+        std::vector<std::string>{BinaryDir() + "/bin/graft-worker", "serve", "--server",
+                                 "127.0.0.1:" + std::to_string(port_), "--token-file", dir_.path() + "/worker.token",
+                                 "--work-dir", dir_.path() + "/" + name},
+        dir_.path() + "/" + name + ".log");
+  }
+
+  std::unique_ptr<grpc::ClientContext> Ctx(const std::string& token, int timeout_ms = 20000) {
+    auto ctx = std::make_unique<grpc::ClientContext>();
+    if (!token.empty()) ctx->AddMetadata("authorization", "Bearer " + token);
+    ctx->set_deadline(std::chrono::system_clock::now() + std::chrono::milliseconds(timeout_ms));
+    return ctx;
+  }
+
+  std::string Submit(const std::string& token, const std::string& config, const std::vector<std::string>& sets) {
+    v1::SubmitJobRequest req;
+    req.set_config_yaml(ReadFile(SourceDir() + "/configs/" + config + ".yaml"));
+    req.set_source_name(config + ".yaml");
+    for (const auto& s : sets) req.add_overrides(s);
+    v1::SubmitJobResponse resp;
+    grpc::Status s = jobs_->SubmitJob(Ctx(token).get(), req, &resp);
+    EXPECT_TRUE(s.ok()) << s.error_message();
+    return resp.job_id();
+  }
+  v1::Job Get(const std::string& id, const std::string& token = kAlice) {
+    v1::GetJobRequest req;
+    req.set_job_id(id);
+    v1::Job job;
+    grpc::Status s = jobs_->GetJob(Ctx(token).get(), req, &job);
+    EXPECT_TRUE(s.ok()) << s.error_message();
+    return job;
+  }
+  std::vector<v1::MetricPoint> Metrics(const std::string& id, const std::string& token = kAlice) {
+    v1::GetMetricsRequest req;
+    req.set_job_id(id);
+    v1::GetMetricsResponse resp;
+    grpc::Status s = jobs_->GetMetrics(Ctx(token).get(), req, &resp);
+    EXPECT_TRUE(s.ok()) << s.error_message();
+    return {resp.points().begin(), resp.points().end()};
+  }
+  bool WaitState(const std::string& id, v1::JobState state, int timeout_ms) {
+    return WaitFor([&] { return Get(id).state() == state; }, timeout_ms);
+  }
+
+  const std::string& dir() const { return dir_.path(); }
+  int port() const { return port_; }
+  std::string address() const { return "127.0.0.1:" + std::to_string(port_); }
+  std::shared_ptr<grpc::Channel> channel() { return channel_; }
+  v1::Jobs::Stub& jobs() { return *jobs_; }
+  v1::Workers::Stub& workers() { return *workers_; }
+  std::string Log() const { return ReadFile(dir_.path() + "/graftd.log"); }
+
+ private:
+  std::string ReadPort() {
+    std::ifstream in(dir_.path() + "/port");
+    std::string p;
+    in >> p;
+    return p;
+  }
+
+  ScopedTempDir dir_;
+  int lease_seconds_;
+  std::vector<std::string> extra_flags_;
+  int port_ = 0;
+  std::unique_ptr<ScopedProcess> graftd_;
+  std::shared_ptr<grpc::Channel> channel_;
+  std::unique_ptr<v1::Jobs::Stub> jobs_;
+  std::unique_ptr<v1::Workers::Stub> workers_;
+};
+
+}  // namespace graft::testing
+
+#endif  // GRAFT_TESTS_CLUSTER_H_
