@@ -53,6 +53,7 @@ struct Positions {
   std::vector<std::vector<Location>> set_items;  // per intervention set, per name
   std::vector<Location> sets;             // per intervention set
   Location interventions, held_out, hidden, root;
+  Location scan_block, das, das_layer, das_dims;
 };
 
 // Reads typed values out of a ConfigNode tree, collecting every error with its location.
@@ -553,6 +554,136 @@ void ReadEvaluation(Reader& r, const ConfigNode* ev, JobSpec& spec, Positions& p
   }
 }
 
+void ReadScan(Reader& r, const ConfigNode* sc, JobSpec& spec, Positions& pos) {
+  if (sc == nullptr) return;
+  ScanSpec& s = spec.scan;
+  s.present = true;
+  pos.scan_block = sc->loc;
+  r.CheckKeys(*sc, "scan", {"layers", "block", "stride", "random_subsets", "triples"});
+  const int layers = static_cast<int>(spec.network.hidden.size());
+  if (const ConfigNode* l = sc->Find("layers")) {
+    std::vector<const ConfigNode*> items;
+    if (l->IsSequence()) {
+      for (const auto& item : l->items) items.push_back(&item);
+    } else {
+      items.push_back(l);
+    }
+    if (items.empty()) r.Error(l->loc, "scan.layers: expected a layer number or a non-empty list of them, got []");
+    for (const ConfigNode* item : items) {
+      auto v = r.Int(*item, "scan.layers[]", 0, 1 << 20);
+      if (!v) continue;
+      if (*v >= layers) {
+        r.Error(item->loc, absl::StrCat("scan.layers: layer ", *v, " does not exist; network.hidden has ", layers,
+                                        " layers, numbered 0-", layers - 1));
+      } else if (std::find(s.layers.begin(), s.layers.end(), *v) != s.layers.end()) {
+        r.Error(item->loc, absl::StrCat("scan.layers: layer ", *v, " is listed twice"));
+      } else {
+        s.layers.push_back(static_cast<int>(*v));
+      }
+    }
+    std::sort(s.layers.begin(), s.layers.end());
+  }
+  if (const ConfigNode* n = sc->Find("block")) {
+    pos.scan_block = n->loc;
+    if (auto v = r.Int(*n, "scan.block", 0, 65536)) s.block = static_cast<int>(*v);
+  }
+  if (const ConfigNode* n = sc->Find("stride")) {
+    if (auto v = r.Int(*n, "scan.stride", 0, 65536)) s.stride = static_cast<int>(*v);
+  }
+  if (const ConfigNode* n = sc->Find("random_subsets")) {
+    if (auto v = r.Int(*n, "scan.random_subsets", 0, 1000)) s.random_subsets = static_cast<int>(*v);
+  }
+  if (const ConfigNode* n = sc->Find("triples")) {
+    if (auto v = r.Int(*n, "scan.triples", 1, int64_t{1} << 24)) s.triples = *v;
+  }
+  for (int l = 0; l < layers; ++l) {
+    if (!s.layers.empty() && std::find(s.layers.begin(), s.layers.end(), l) == s.layers.end()) continue;
+    if (s.block > spec.network.hidden[l]) {
+      r.Error(pos.scan_block, absl::StrCat("scan.block: ", s.block, " units do not fit in layer ", l, ", which has ",
+                                           spec.network.hidden[l], "; lower scan.block or leave that layer out of "
+                                           "scan.layers"));
+      break;
+    }
+  }
+}
+
+void ReadDas(Reader& r, const ConfigNode* da, JobSpec& spec, Positions& pos) {
+  if (da == nullptr) return;
+  DasSpec& d = spec.das;
+  d.present = true;
+  pos.das = pos.das_layer = pos.das_dims = da->loc;
+  r.CheckKeys(*da, "das", {"layer", "dims", "steps", "lr", "batch_size"});
+  if (const ConfigNode* n = da->Find("layer")) {
+    pos.das_layer = n->loc;
+    if (auto v = r.Int(*n, "das.layer", 0, 1 << 20)) d.layer = static_cast<int>(*v);
+  }
+  if (const ConfigNode* n = da->Find("dims")) {
+    pos.das_dims = n->loc;
+    if (auto v = r.Int(*n, "das.dims", 1, 65536)) d.dims = static_cast<int>(*v);
+  }
+  if (const ConfigNode* n = da->Find("steps")) {
+    if (auto v = r.Int(*n, "das.steps", 1, int64_t{1} << 40)) d.steps = *v;
+  }
+  if (const ConfigNode* n = da->Find("lr")) {
+    if (auto v = r.Number(*n, "das.lr", 0, 10, /*hi_open=*/false, /*lo_open=*/true)) d.lr = *v;
+  }
+  if (const ConfigNode* n = da->Find("batch_size")) {
+    if (auto v = r.Int(*n, "das.batch_size", 1, 65536)) d.batch_size = static_cast<int>(*v);
+  }
+}
+
+// The `das:` block against the alignment and the intervention sets; resolves the defaults.
+void ValidateDas(Reader& r, const Positions& pos, const std::vector<std::vector<int>>& sets, ResolvedJob& job) {
+  DasSpec& d = job.spec.das;
+  const JobSpec& spec = job.spec;
+  const causal::CausalModel& model = *job.model;
+  if (!d.present) return;
+  if (spec.alignment.empty()) {
+    r.Error(pos.das, "das: needs at least one aligned variable in 'alignment' (its units give the default "
+                     "das.dims; its layer the default das.layer)");
+    return;
+  }
+  const int layers = static_cast<int>(spec.network.hidden.size());
+  if (d.layer < 0) {
+    for (const auto& site : spec.alignment) {
+      if (site.layer != spec.alignment.front().layer) {
+        r.Error(pos.das, absl::StrCat("das: the aligned variables sit in different layers (", spec.alignment.front().variable,
+                                      " in ", spec.alignment.front().layer, ", ", site.variable, " in ", site.layer,
+                                      "); set das.layer to the layer to rotate"));
+        return;
+      }
+    }
+    d.layer = spec.alignment.front().layer;
+  } else if (d.layer >= layers) {
+    r.Error(pos.das_layer, absl::StrCat("das.layer: layer ", d.layer, " does not exist; network.hidden has ", layers,
+                                        " layers, numbered 0-", layers - 1));
+    return;
+  }
+  const int width = spec.network.hidden[d.layer];
+  int needed = 0;
+  for (const auto& site : spec.alignment) needed += d.dims > 0 ? d.dims : static_cast<int>(site.units.size());
+  if (needed > width) {
+    r.Error(pos.das_dims, absl::StrCat("das.dims: the ", spec.alignment.size(), " aligned variables need ", needed,
+                                       " rotated dimensions, but layer ", d.layer, " has only ", width,
+                                       " units; lower das.dims"));
+    return;
+  }
+  // All DAS variables share one layer: a set that moves X without its descendant Y cannot work.
+  for (const auto& set : sets) {
+    for (int x : set) {
+      for (int y = 0; y < model.num_variables(); ++y) {
+        if (job.site_of_variable[y] < 0 || !model.IsAncestor(x, y)) continue;
+        if (std::find(set.begin(), set.end(), y) != set.end()) continue;
+        r.Error(pos.das, absl::StrCat("das: the intervention set with '", model.variable(x).name,
+                                      "' but not its descendant '", model.variable(y).name,
+                                      "' cannot be searched in one layer; intervene on both together in "
+                                      "training.interventions"));
+        return;
+      }
+    }
+  }
+}
+
 std::string Combine(const std::vector<std::string>& errors) { return absl::StrJoin(errors, "\n"); }
 
 // Checks everything that needs the compiled model; fills the resolved parts of `job`.
@@ -708,6 +839,8 @@ void Validate(Reader& r, const Positions& pos, ResolvedJob& job) {
     }
   }
   if (!r.ok()) return;
+  ValidateDas(r, pos, sets, job);
+  if (!r.ok()) return;
   for (const auto& s : sets) {
     InterventionSet is;
     is.variables = s;
@@ -740,7 +873,7 @@ absl::StatusOr<ResolvedJob> ResolveTree(const ConfigNode& root) {
         absl::StrCat(root.loc.ToString(), ": expected a config (a map with algorithm, network, alignment, ...), got ",
                      root.Describe()));
   }
-  r.CheckKeys(root, "", {"name", "seed", "algorithm", "network", "alignment", "training", "evaluation"});
+  r.CheckKeys(root, "", {"name", "seed", "algorithm", "network", "alignment", "training", "evaluation", "scan", "das"});
   if (const ConfigNode* n = root.Find("name")) {
     if (auto s = r.String(*n, "name")) spec.name = *s;
   }
@@ -760,6 +893,8 @@ absl::StatusOr<ResolvedJob> ResolveTree(const ConfigNode& root) {
   ReadAlignment(r, r.Map(root.Find("alignment"), "alignment"), spec, pos);
   ReadTraining(r, r.Map(root.Find("training"), "training"), spec, pos);
   ReadEvaluation(r, r.Map(root.Find("evaluation"), "evaluation"), spec, pos);
+  ReadScan(r, r.Map(root.Find("scan"), "scan"), spec, pos);
+  ReadDas(r, r.Map(root.Find("das"), "das"), spec, pos);
   if (!r.ok()) return absl::InvalidArgumentError(Combine(r.errors()));
 
   causal::ModelError me;
@@ -951,6 +1086,29 @@ std::string ResolvedSpecYaml(const JobSpec& spec) {
   Put(ev, "held_out", Scalar(FormatDouble(spec.evaluation.held_out)));
   Put(ev, "triples", Scalar(absl::StrCat(spec.evaluation.triples)));
   Put(root, "evaluation", std::move(ev));
+  // The analysis blocks only when the config has them, so configs without them keep their hash.
+  if (spec.scan.present) {
+    ConfigNode sc = MapNode();
+    if (!spec.scan.layers.empty()) {
+      ConfigNode ls = SeqNode();
+      for (int l : spec.scan.layers) ls.items.push_back(Scalar(absl::StrCat(l)));
+      Put(sc, "layers", std::move(ls));
+    }
+    Put(sc, "block", Scalar(absl::StrCat(spec.scan.block)));
+    Put(sc, "stride", Scalar(absl::StrCat(spec.scan.stride)));
+    Put(sc, "random_subsets", Scalar(absl::StrCat(spec.scan.random_subsets)));
+    Put(sc, "triples", Scalar(absl::StrCat(spec.scan.triples)));
+    Put(root, "scan", std::move(sc));
+  }
+  if (spec.das.present) {
+    ConfigNode da = MapNode();
+    if (spec.das.layer >= 0) Put(da, "layer", Scalar(absl::StrCat(spec.das.layer)));
+    if (spec.das.dims > 0) Put(da, "dims", Scalar(absl::StrCat(spec.das.dims)));
+    Put(da, "steps", Scalar(absl::StrCat(spec.das.steps)));
+    Put(da, "lr", Scalar(FormatDouble(spec.das.lr)));
+    Put(da, "batch_size", Scalar(absl::StrCat(spec.das.batch_size)));
+    Put(root, "das", std::move(da));
+  }
   return ToYaml(root);
 }
 

@@ -24,6 +24,7 @@
 #include "trainer/causal/rng.h"
 #include "trainer/eval/wilson.h"
 #include "trainer/net/mlp.h"
+#include "trainer/train/evaluation.h"
 
 #ifndef GRAFT_VERSION
 #define GRAFT_VERSION "unknown"
@@ -112,81 +113,6 @@ double PeakRssMb() {
 }
 
 // ---------------------------------------------------------------------------------------------
-// Counterfactual labels by batched gathers over the compiled tables.
-
-class LabelTables {
- public:
-  LabelTables(const causal::CausalModel& model, const std::vector<spec::InterventionSet>& sets) : model_(model) {
-    const int n = model.num_variables();
-    tables_.resize(n);
-    strides_.resize(n);
-    in_set_.resize(n);
-    for (int v = 0; v < n; ++v) {
-      const causal::Variable& var = model.variable(v);
-      if (var.role == causal::Role::kInput) continue;
-      std::vector<int64_t> table(var.table.begin(), var.table.end());
-      tables_[v] = torch::tensor(table, torch::kInt64);
-      strides_[v] = var.strides;
-      std::vector<uint8_t> member(sets.size(), 0);
-      bool any = false;
-      for (size_t s = 0; s < sets.size(); ++s) {
-        if (std::find(sets[s].variables.begin(), sets[s].variables.end(), v) != sets[s].variables.end()) {
-          member[s] = 1;
-          any = true;
-        }
-      }
-      if (any) in_set_[v] = torch::tensor(std::vector<int64_t>(member.begin(), member.end()), torch::kInt64).to(torch::kBool);
-    }
-    std::vector<int64_t> sizes, strides;
-    int64_t stride = 1;
-    for (int k = static_cast<int>(model.inputs().size()) - 1; k >= 0; --k) {
-      sizes.insert(sizes.begin(), model.variable(model.inputs()[k]).domain.size());
-      strides.insert(strides.begin(), stride);
-      stride *= sizes.front();
-    }
-    input_sizes_ = torch::tensor(sizes, torch::kInt64);
-    input_strides_ = torch::tensor(strides, torch::kInt64);
-  }
-
-  // Input value indices [B, num_inputs] of input numbers [B].
-  Tensor Decode(const Tensor& numbers) const {
-    return torch::remainder(torch::floor_divide(numbers.unsqueeze(1), input_strides_), input_sizes_);
-  }
-
-  // Values of every variable (one [B] tensor per variable) for inputs [B, num_inputs]; with
-  // `source` and `set_index` given, the variables of each example's set take the source's values.
-  std::vector<Tensor> Values(const Tensor& inputs, const std::vector<Tensor>* source = nullptr,
-                             const Tensor* set_index = nullptr) const {
-    const int n = model_.num_variables();
-    std::vector<Tensor> cols(n);
-    for (size_t k = 0; k < model_.inputs().size(); ++k) cols[model_.inputs()[k]] = inputs.select(1, k);
-    for (int v : model_.topological_order()) {
-      const causal::Variable& var = model_.variable(v);
-      if (var.role == causal::Role::kInput) continue;
-      Tensor idx;
-      for (size_t p = 0; p < var.parents.size(); ++p) {
-        Tensor term = strides_[v][p] == 1 ? cols[var.parents[p]] : cols[var.parents[p]] * strides_[v][p];
-        idx = idx.defined() ? idx + term : term;
-      }
-      Tensor value = idx.defined() ? tables_[v].index_select(0, idx)
-                                   : tables_[v].expand({inputs.size(0)});
-      if (source != nullptr && in_set_[v].defined()) {
-        value = torch::where(in_set_[v].index_select(0, *set_index), (*source)[v], value);
-      }
-      cols[v] = value;
-    }
-    return cols;
-  }
-
- private:
-  const causal::CausalModel& model_;
-  std::vector<Tensor> tables_;
-  std::vector<std::vector<int64_t>> strides_;
-  std::vector<Tensor> in_set_;
-  Tensor input_sizes_, input_strides_;
-};
-
-// ---------------------------------------------------------------------------------------------
 // The data stream: epochs over the training inputs in a shuffled order.
 
 class BatchStream {
@@ -234,10 +160,6 @@ std::array<uint64_t, 4> ReadRngState(const Tensor& t) {
   return s;
 }
 
-json AccuracyJson(const eval::Accuracy& a) {
-  return json{{"value", a.value}, {"lo", a.lo}, {"hi", a.hi}, {"correct", a.correct}, {"n", a.n}};
-}
-
 absl::Status WriteText(const fs::path& path, const std::string& text) {
   const fs::path tmp = path.string() + ".tmp";
   {
@@ -275,6 +197,7 @@ class Run {
   // One optimiser step; returns the two loss values.
   std::pair<double, double> Step();
   json Evaluate(int64_t step);
+  EvalInputs EvalData() const { return EvalInputs{eval_train_, eval_test_, triple_base_, triple_source_, triple_set_}; }
   absl::Status SaveCheckpoint(int64_t step);
   absl::Status LoadCheckpoint(const fs::path& path, int64_t* step);
   absl::Status WriteWeights(const fs::path& path);
@@ -309,6 +232,7 @@ class Run {
   double wall_before_ = 0;  // wall seconds of earlier attempts (resume)
   std::chrono::steady_clock::time_point start_;
   json last_eval_;
+  json step0_eval_;  // the evaluation at step 0 (before training), for result.json's controls
   std::chrono::steady_clock::time_point last_progress_;
   int64_t progress_step0_ = 0;
   double first_step_s_ = -1;  // process age when the first step of this process began
@@ -317,19 +241,7 @@ class Run {
 };
 
 void Run::BuildNetwork() {
-  net::MlpOptions o;
-  const auto& model = *job_.model;
-  for (int i : model.inputs()) {
-    o.input_sizes.push_back(model.variable(i).domain.size());
-    o.input_names.push_back(model.variable(i).name);
-  }
-  o.embedding_dim = spec_.network.embedding_dim;
-  o.fixed_embedding = spec_.network.embedding_init == spec::EmbeddingInit::kFixedRandom;
-  o.hidden = spec_.network.hidden;
-  o.activation = static_cast<net::ActivationKind>(static_cast<int>(spec_.network.activation));
-  o.num_classes = model.variable(model.output()).domain.size();
-  torch::manual_seed(spec_.seed);
-  net_ = net::Mlp(o);
+  net_ = CreateMlp(job_);
   std::vector<Tensor> params;
   for (auto& p : net_->parameters()) {
     if (p.requires_grad()) params.push_back(p);
@@ -361,29 +273,12 @@ void Run::BuildSites() {
 }
 
 void Run::BuildEvaluation() {
-  const int64_t cap = spec_.evaluation.triples;
-  auto pick = [&](const std::vector<int64_t>& inputs, uint64_t stream) {
-    if (static_cast<int64_t>(inputs.size()) <= cap) return ToTensor(inputs);
-    std::vector<int64_t> copy = inputs;
-    causal::Rng r(spec_.seed, stream);
-    r.Shuffle(copy);
-    copy.resize(cap);
-    std::sort(copy.begin(), copy.end());
-    return ToTensor(copy);
-  };
-  eval_train_ = pick(job_.split.train, 0xE1);
-  eval_test_ = pick(job_.split.test, 0xE2);
-  std::vector<causal::Triple> triples =
-      causal::MakeTriples(job_.split.test, static_cast<int>(job_.sets.size()), cap, spec_.seed);
-  std::vector<int64_t> b, s, z;
-  for (const auto& t : triples) {
-    b.push_back(t.base);
-    s.push_back(t.source);
-    z.push_back(t.set);
-  }
-  triple_base_ = ToTensor(b);
-  triple_source_ = ToTensor(s);
-  triple_set_ = ToTensor(z);
+  EvalInputs e = CreateEvalInputs(job_);
+  eval_train_ = e.train;
+  eval_test_ = e.test;
+  triple_base_ = e.base;
+  triple_source_ = e.source;
+  triple_set_ = e.set;
 }
 
 net::InterventionMasks Run::Masks(const Tensor& set_index) const {
@@ -467,13 +362,6 @@ std::pair<double, double> Run::Step() {
 
 json Run::Evaluate(int64_t step) {
   c10::InferenceMode guard;
-  const int out = job_.model->output();
-  auto task_accuracy = [&](const Tensor& numbers) {
-    Tensor in = labels_.Decode(numbers);
-    Tensor pred = net_->forward(in).argmax(1);
-    const int64_t correct = pred.eq(labels_.Values(in)[out]).sum().item<int64_t>();
-    return eval::WilsonAccuracy(correct, numbers.size(0));
-  };
   json m;
   m["step"] = step;
   m["examples"] = step * spec_.training.batch_size;
@@ -487,45 +375,12 @@ json Run::Evaluate(int64_t step) {
     m["loss_task"] = nullptr;
     m["loss_interchange"] = nullptr;
   }
-  m["acc_train"] = AccuracyJson(task_accuracy(eval_train_));
-  m["acc_test"] = AccuracyJson(task_accuracy(eval_test_));
-
-  const int num_sets = static_cast<int>(job_.sets.size());
-  std::vector<int64_t> correct_by_set(num_sets, 0), n_by_set(num_sets, 0);
-  int64_t correct = 0, n = 0, changed_correct = 0, changed_n = 0, unchanged = 0;
-  const int64_t total = triple_base_.size(0);
-  const int64_t chunk = 8192;
-  for (int64_t at = 0; at < total; at += chunk) {
-    const int64_t len = std::min(chunk, total - at);
-    Tensor b_in = labels_.Decode(triple_base_.narrow(0, at, len));
-    Tensor s_in = labels_.Decode(triple_source_.narrow(0, at, len));
-    Tensor z = triple_set_.narrow(0, at, len);
-    Tensor pred = InterveneLogits(b_in, s_in, z, nullptr).argmax(1);
-    std::vector<Tensor> base_vals = labels_.Values(b_in);
-    std::vector<Tensor> src_vals = labels_.Values(s_in);
-    Tensor cf = labels_.Values(b_in, &src_vals, &z)[out];
-    Tensor ok = pred.eq(cf);
-    Tensor changed = cf.ne(base_vals[out]);
-    correct += ok.sum().item<int64_t>();
-    n += len;
-    changed_correct += (ok & changed).sum().item<int64_t>();
-    changed_n += changed.sum().item<int64_t>();
-    unchanged += len - changed.sum().item<int64_t>();
-    Tensor per_set_ok = torch::zeros({num_sets}, torch::kInt64).index_add_(0, z, ok.to(torch::kInt64));
-    Tensor per_set_n = torch::bincount(z, {}, num_sets);
-    for (int s = 0; s < num_sets; ++s) {
-      correct_by_set[s] += per_set_ok[s].item<int64_t>();
-      n_by_set[s] += per_set_n[s].item<int64_t>();
-    }
-  }
-  m["iia_test"] = AccuracyJson(eval::WilsonAccuracy(correct, n));
-  m["iia_changed_test"] = AccuracyJson(eval::WilsonAccuracy(changed_correct, changed_n));
-  json by_set = json::object();
-  for (int s = 0; s < num_sets; ++s) {
-    by_set[job_.sets[s].name] = AccuracyJson(eval::WilsonAccuracy(correct_by_set[s], n_by_set[s]));
-  }
-  m["iia_by_set"] = by_set;
-  m["unchanged_fraction"] = n > 0 ? static_cast<double>(unchanged) / static_cast<double>(n) : 0.0;
+  // The same function as `graft-worker evaluate`, so both report identical figures.
+  json net_metrics = EvaluateNetwork(job_, *net_, labels_, EvalData(),
+                                     [&](const Tensor& b, const Tensor& s, const Tensor& z) {
+                                       return InterveneLogits(b, s, z, nullptr);
+                                     });
+  for (auto& [k, v] : net_metrics.items()) m[k] = v;
   loss_task_sum_ = loss_iit_sum_ = 0;
   loss_count_ = 0;
   return m;
@@ -741,6 +596,7 @@ absl::StatusOr<RunOutcome> Run::Execute() {
       if (m["step"].get<int64_t>() > step) break;
       metric_lines.push_back(line);
       last_eval_ = m;
+      if (m["step"].get<int64_t>() == 0) step0_eval_ = m;
     }
     progress_step0_ = step;
   }
@@ -760,7 +616,10 @@ absl::StatusOr<RunOutcome> Run::Execute() {
     metrics_out << line << "\n" << std::flush;
     if (options_.on_evaluation) options_.on_evaluation(s, line);
   };
-  if (step == 0) emit(0);
+  if (step == 0) {
+    emit(0);
+    step0_eval_ = last_eval_;
+  }
   int64_t last_checkpoint = step;
   RunOutcome outcome;
   while (step < t.steps) {
@@ -818,6 +677,18 @@ absl::StatusOr<RunOutcome> Run::Execute() {
   result["first_step_s"] = first_step_s_;
   result["step_seconds"] = step_seconds_;
   result["provenance"] = Provenance();
+  // Controls (issue 7 section 2): step-0 IIA, the random-units control, the confusion table and
+  // failures.jsonl, all on the final network and the same held-out triples.
+  if (!step0_eval_.is_null()) {
+    result["iia_step0"] = json{{"iia_test", step0_eval_["iia_test"]}, {"iia_changed_test", step0_eval_["iia_changed_test"]}};
+  }
+  std::vector<std::string> failures;
+  json controls = FinalControls(job_, *net_, labels_, EvalData(), &failures);
+  for (auto& [k, v] : controls.items()) result[k] = v;
+  std::string failure_text;
+  for (const auto& f : failures) failure_text += f + "\n";
+  st = WriteText(out / "failures.jsonl", failure_text);
+  if (!st.ok()) return st;
   st = WriteWeights(out / "weights.pt");
   if (!st.ok()) return st;
   st = WriteText(out / "result.json", result.dump(2) + "\n");

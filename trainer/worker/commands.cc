@@ -1,6 +1,7 @@
 #include "trainer/worker/commands.h"
 
 #include "trainer/spec/spec.h"
+#include "trainer/train/analysis.h"
 #include "trainer/train/trainer.h"
 
 namespace graft::worker {
@@ -43,6 +44,41 @@ int RunCommand(const RunArgs& args, const std::atomic<bool>* stop, std::ostream&
   }
   out << "finished " << outcome->step << " steps; artifacts in " << args.out_dir << "\n";
   return kExitOk;
+}
+
+namespace {
+
+using AnalysisFn = absl::StatusOr<std::string> (*)(const spec::ResolvedJob&, const train::AnalysisOptions&);
+
+int Analyse(const AnalyseArgs& args, AnalysisFn fn, std::ostream& out, std::ostream& err) {
+  auto job = spec::LoadJob(args.config, args.overrides);
+  if (!job.ok()) {
+    err << job.status().message() << "\n";
+    return absl::IsNotFound(job.status()) ? kExitFailure : kExitInvalidConfig;
+  }
+  train::AnalysisOptions options;
+  options.weights_path = args.weights_path;
+  options.out_dir = args.out_dir;
+  options.progress = &err;
+  auto summary = fn(*job, options);
+  if (!summary.ok()) {
+    err << "graft-worker: " << summary.status().message() << "\n";
+    return absl::IsInvalidArgument(summary.status()) ? kExitInvalidConfig : kExitFailure;
+  }
+  out << *summary << "files in " << args.out_dir << "\n";
+  return kExitOk;
+}
+
+}  // namespace
+
+int EvaluateCommand(const AnalyseArgs& args, std::ostream& out, std::ostream& err) {
+  return Analyse(args, &train::EvaluateStored, out, err);
+}
+int ScanCommand(const AnalyseArgs& args, std::ostream& out, std::ostream& err) {
+  return Analyse(args, &train::ScanStored, out, err);
+}
+int DasCommand(const AnalyseArgs& args, std::ostream& out, std::ostream& err) {
+  return Analyse(args, &train::DasStored, out, err);
 }
 
 }  // namespace graft::worker

@@ -38,6 +38,22 @@ struct RunArgs {
 int RunCommand(const RunArgs& args, const std::atomic<bool>* stop, std::ostream& out, std::ostream& err,
                bool err_is_terminal);
 
+struct AnalyseArgs {
+  std::string config;
+  std::vector<std::string> overrides;
+  std::string weights_path;  // weights.pt from graft or a Python torch.save dict
+  std::string out_dir;
+};
+
+// `graft-worker evaluate|scan|das CONFIG --weights FILE --out DIR [--set k=v]...`: analyses a
+// stored network without training it and writes the command's files into DIR (see
+// trainer/train/analysis.h); the summary goes to `out`, progress and errors to `err`. Exit
+// codes: 0 done; 2 invalid config or weights that do not fit it; 1 other failures (such as a
+// weights file that cannot be opened).
+int EvaluateCommand(const AnalyseArgs& args, std::ostream& out, std::ostream& err);
+int ScanCommand(const AnalyseArgs& args, std::ostream& out, std::ostream& err);
+int DasCommand(const AnalyseArgs& args, std::ostream& out, std::ostream& err);
+
 }  // namespace graft::worker
 
 #endif  // GRAFT_TRAINER_WORKER_COMMANDS_H_

@@ -39,6 +39,23 @@ int main(int argc, char** argv) {
   run->add_option("--probe", run_args.probe_path,
                   "Also write the first evaluation triples with base and intervened logits to this JSON file");
 
+  // evaluate, scan and das share their arguments.
+  graft::worker::AnalyseArgs analyse_args;
+  auto add_analysis = [&](const char* name, const char* help) {
+    CLI::App* cmd = app.add_subcommand(name, help);
+    cmd->add_option("CONFIG", analyse_args.config, "YAML config file")->required();
+    cmd->add_option("--weights", analyse_args.weights_path,
+                    "weights.pt from graft, or a dict of tensors saved by Python's torch.save")->required();
+    cmd->add_option("--out", analyse_args.out_dir, "Directory for the command's files")->required();
+    cmd->add_option("--set", analyse_args.overrides, "Override a key: key.path=value (repeatable)")->take_all();
+    return cmd;
+  };
+  CLI::App* evaluate = add_analysis("evaluate", "Evaluate a stored network (IIA with intervals and controls) "
+                                                "without training");
+  CLI::App* scan = add_analysis("scan", "Search candidate unit sites of each aligned variable in a stored network");
+  CLI::App* das = add_analysis("das", "Distributed alignment search: learn a rotation of one layer of a stored "
+                                      "network, with an untrained network as the control");
+
   graft::worker::ServeArgs serve_args;
   CLI::App* serve = app.add_subcommand("serve", "Lease jobs from a coordinator and train them, one at a time");
   serve->add_option("--server", serve_args.server, "coordinator host:port (default 127.0.0.1:7070)");
@@ -59,6 +76,9 @@ int main(int argc, char** argv) {
     std::signal(SIGTERM, OnStopSignal);
     return graft::worker::RunCommand(run_args, &stop_requested, std::cout, std::cerr, isatty(STDERR_FILENO) == 1);
   }
+  if (evaluate->parsed()) return graft::worker::EvaluateCommand(analyse_args, std::cout, std::cerr);
+  if (scan->parsed()) return graft::worker::ScanCommand(analyse_args, std::cout, std::cerr);
+  if (das->parsed()) return graft::worker::DasCommand(analyse_args, std::cout, std::cerr);
   if (serve->parsed()) {
     std::signal(SIGINT, OnStopSignal);
     std::signal(SIGTERM, OnStopSignal);

@@ -1,0 +1,181 @@
+// Evaluation pieces shared by the trainer (trainer.cc) and the analysis commands (analysis.cc):
+// counterfactual labels by batched gathers, the network a spec starts from, the held-out
+// triples, unit-site masks, IIA with intervals, the confusion table, failing triples and the
+// random-units control. Private to graft_train: includes torch and nlohmann/json.
+// Thread-safety: values and functions on caller-owned data; no shared state.
+#ifndef GRAFT_TRAINER_TRAIN_EVALUATION_H_
+#define GRAFT_TRAINER_TRAIN_EVALUATION_H_
+
+#include <functional>
+#include <string>
+#include <vector>
+
+#include <torch/torch.h>
+
+#include "absl/status/status.h"
+#include "nlohmann/json.hpp"
+#include "trainer/causal/model.h"
+#include "trainer/eval/wilson.h"
+#include "trainer/net/mlp.h"
+#include "trainer/spec/spec.h"
+
+namespace graft::train {
+
+using ReportJson = nlohmann::ordered_json;  // keys in the order written
+
+// Counterfactual labels by batched gathers over the compiled tables. Holds a reference to
+// `model`, which must outlive it.
+class LabelTables {
+ public:
+  LabelTables(const causal::CausalModel& model, const std::vector<spec::InterventionSet>& sets) : model_(model) {
+    const int n = model.num_variables();
+    tables_.resize(n);
+    strides_.resize(n);
+    in_set_.resize(n);
+    for (int v = 0; v < n; ++v) {
+      const causal::Variable& var = model.variable(v);
+      if (var.role == causal::Role::kInput) continue;
+      std::vector<int64_t> table(var.table.begin(), var.table.end());
+      tables_[v] = torch::tensor(table, torch::kInt64);
+      strides_[v] = var.strides;
+      std::vector<uint8_t> member(sets.size(), 0);
+      bool any = false;
+      for (size_t s = 0; s < sets.size(); ++s) {
+        if (std::find(sets[s].variables.begin(), sets[s].variables.end(), v) != sets[s].variables.end()) {
+          member[s] = 1;
+          any = true;
+        }
+      }
+      if (any) in_set_[v] = torch::tensor(std::vector<int64_t>(member.begin(), member.end()), torch::kInt64).to(torch::kBool);
+    }
+    std::vector<int64_t> sizes, strides;
+    int64_t stride = 1;
+    for (int k = static_cast<int>(model.inputs().size()) - 1; k >= 0; --k) {
+      sizes.insert(sizes.begin(), model.variable(model.inputs()[k]).domain.size());
+      strides.insert(strides.begin(), stride);
+      stride *= sizes.front();
+    }
+    input_sizes_ = torch::tensor(sizes, torch::kInt64);
+    input_strides_ = torch::tensor(strides, torch::kInt64);
+  }
+
+  // Input value indices [B, num_inputs] of input numbers [B].
+  torch::Tensor Decode(const torch::Tensor& numbers) const {
+    return torch::remainder(torch::floor_divide(numbers.unsqueeze(1), input_strides_), input_sizes_);
+  }
+
+  // Values of every variable (one [B] tensor per variable) for inputs [B, num_inputs]; with
+  // `source` and `set_index` given, the variables of each example's set take the source's values.
+  std::vector<torch::Tensor> Values(const torch::Tensor& inputs, const std::vector<torch::Tensor>* source = nullptr,
+                             const torch::Tensor* set_index = nullptr) const {
+    const int n = model_.num_variables();
+    std::vector<torch::Tensor> cols(n);
+    for (size_t k = 0; k < model_.inputs().size(); ++k) cols[model_.inputs()[k]] = inputs.select(1, k);
+    for (int v : model_.topological_order()) {
+      const causal::Variable& var = model_.variable(v);
+      if (var.role == causal::Role::kInput) continue;
+      torch::Tensor idx;
+      for (size_t p = 0; p < var.parents.size(); ++p) {
+        torch::Tensor term = strides_[v][p] == 1 ? cols[var.parents[p]] : cols[var.parents[p]] * strides_[v][p];
+        idx = idx.defined() ? idx + term : term;
+      }
+      torch::Tensor value = idx.defined() ? tables_[v].index_select(0, idx)
+                                   : tables_[v].expand({inputs.size(0)});
+      if (source != nullptr && in_set_[v].defined()) {
+        value = torch::where(in_set_[v].index_select(0, *set_index), (*source)[v], value);
+      }
+      cols[v] = value;
+    }
+    return cols;
+  }
+
+ private:
+  const causal::CausalModel& model_;
+  std::vector<torch::Tensor> tables_;
+  std::vector<std::vector<int64_t>> strides_;
+  std::vector<torch::Tensor> in_set_;
+  torch::Tensor input_sizes_, input_strides_;
+};
+
+// Where one variable's units are: a layer and unit indices (layer -1: not aligned).
+struct UnitSite {
+  int layer = -1;
+  std::vector<int> units;
+};
+
+// The config's alignment, indexed by model variable.
+std::vector<UnitSite> AlignmentSites(const spec::ResolvedJob& job);
+
+// Per-layer unit masks of a list of intervention sets over given sites.
+class UnitMasks {
+ public:
+  UnitMasks(const std::vector<spec::InterventionSet>& sets, const std::vector<UnitSite>& sites,
+            const std::vector<int>& widths);
+  int lowest_layer() const { return lowest_; }
+  int highest_layer() const { return highest_; }
+  // The masks of each example's set, set_index [B] (int64 indices into the sets).
+  net::InterventionMasks ForSets(const torch::Tensor& set_index) const;
+  // Intervened logits for base and source inputs [B, I] (value indices); `base_logits` (may be
+  // null) receives the base run's logits.
+  torch::Tensor Logits(net::MlpImpl& net, const torch::Tensor& base_in, const torch::Tensor& source_in,
+                       const torch::Tensor& set_index, torch::Tensor* base_logits) const;
+
+ private:
+  std::vector<torch::Tensor> per_layer_;  // [num_sets, width] bool, or undefined
+  int lowest_ = -1, highest_ = -1;
+};
+
+// The job's network before training: torch::manual_seed(spec.seed), then the MLP, exactly as the
+// trainer builds it, so its IIA is the run's step-0 IIA.
+net::Mlp CreateMlp(const spec::ResolvedJob& job);
+
+// The fixed evaluation data of a job: input numbers for task accuracy on training and held-out
+// inputs (each capped at evaluation.triples, seeded) and the held-out (base, source, set) triples.
+struct EvalInputs {
+  torch::Tensor train, test;         // input numbers
+  torch::Tensor base, source, set;   // triples: input numbers and set indices
+};
+EvalInputs CreateEvalInputs(const spec::ResolvedJob& job);
+
+// Intervened logits for decoded base and source inputs [B, I] and set indices [B].
+using IntervenedLogitsFn =
+    std::function<torch::Tensor(const torch::Tensor& base_in, const torch::Tensor& source_in, const torch::Tensor& set)>;
+
+// What EvaluateTriples adds beyond the accuracies.
+struct TripleDetail {
+  bool confusion = false;  // add "confusion": per set, counterfactual class x predicted class
+  int max_failures = 0;    // append up to this many failing triples as JSON lines to `failures`
+};
+
+// IIA over the triples (base, source: input numbers; set: indices into `sets`): "iia_test",
+// "iia_changed_test", "iia_by_set" (keyed by set name), "unchanged_fraction", and "confusion"
+// when asked. Each accuracy is {"value", "lo", "hi", "correct", "n"} with 95% Wilson bounds.
+ReportJson EvaluateTriples(const causal::CausalModel& model, const std::vector<spec::InterventionSet>& sets,
+                           const LabelTables& labels, const torch::Tensor& base, const torch::Tensor& source,
+                           const torch::Tensor& set, const IntervenedLogitsFn& logits, const TripleDetail& detail,
+                           std::vector<std::string>* failures);
+
+// Everything an evaluation line reports about the network: "acc_train", "acc_test", then the
+// keys of EvaluateTriples over the job's held-out triples and sets.
+ReportJson EvaluateNetwork(const spec::ResolvedJob& job, net::MlpImpl& net, const LabelTables& labels,
+                           const EvalInputs& inputs, const IntervenedLogitsFn& logits);
+
+// The random-units control: per aligned variable the same number of units in the same layer,
+// drawn (seeded by spec.seed) from the layer's units outside the real alignment when enough are
+// free, else from units no other control variable took. Indexed by model variable.
+std::vector<UnitSite> RandomUnitSites(const spec::ResolvedJob& job);
+
+// The controls of a final report for the network as it is now: "confusion" (real alignment),
+// "control_random_units" ({"sites", "iia_test", "iia_changed_test", "iia_by_set"}), and up to 200
+// failing triples of the real alignment appended to `failures` as JSON lines.
+ReportJson FinalControls(const spec::ResolvedJob& job, net::MlpImpl& net, const LabelTables& labels,
+                         const EvalInputs& inputs, std::vector<std::string>* failures);
+
+// Writes `text` to `path` through a temporary file and a rename. Errors name the file.
+absl::Status WriteFileAtomically(const std::string& path, const std::string& text);
+
+ReportJson AccuracyReport(const eval::Accuracy& a);
+
+}  // namespace graft::train
+
+#endif  // GRAFT_TRAINER_TRAIN_EVALUATION_H_
