@@ -323,5 +323,45 @@ TEST(CheckCommand, PrintsSummaryOrErrorsWithExitCodes) {
   EXPECT_NE(r.output.find("--set #1:1:18: evaluation.every: expected a whole number"), std::string::npos) << r.output;
 }
 
+// The analysis blocks (issue 7): `scan:` and `das:`. Appended text starts at line 36 of kBase.
+TEST(Spec, AnalysisBlocksRoundTripAndResolveDefaults) {
+  auto job = LoadJobFromText(std::string(kBase) + "scan: {block: 8, random_subsets: 2}\ndas: {steps: 50}\n", "job.yaml", {});
+  ASSERT_TRUE(job.ok()) << job.status();
+  EXPECT_TRUE(job->spec.scan.present);
+  EXPECT_EQ(job->spec.scan.block, 8);
+  EXPECT_EQ(job->spec.das.layer, 1);  // the layer both aligned variables share
+  auto again = LoadJobFromText(ResolvedSpecYaml(job->spec), "spec.yaml", {});
+  ASSERT_TRUE(again.ok()) << again.status();
+  EXPECT_EQ(ResolvedSpecYaml(again->spec), ResolvedSpecYaml(job->spec));
+  // Without the blocks the resolved text (and so the spec hash of existing runs) has neither key.
+  auto plain = LoadJobFromText(kBase, "job.yaml", {});
+  ASSERT_TRUE(plain.ok());
+  EXPECT_EQ(ResolvedSpecYaml(plain->spec).find("scan:"), std::string::npos);
+  EXPECT_EQ(ResolvedSpecYaml(plain->spec).find("das:"), std::string::npos);
+}
+
+TEST(SpecErrors, ScanBlock) {
+  EXPECT_ERROR(ErrorOf(std::string(kBase) + "scan:\n  blok: 8\n"), "job.yaml:37:3:",
+               "unknown key 'blok' in 'scan'; did you mean 'block'?");
+  EXPECT_ERROR(ErrorOf(std::string(kBase) + "scan:\n  layers: [0, 5]\n"), "job.yaml:37:15:",
+               "scan.layers: layer 5 does not exist; network.hidden has 3 layers, numbered 0-2");
+  EXPECT_ERROR(ErrorOf(std::string(kBase) + "scan:\n  block: 65\n"), "job.yaml:37:10:",
+               "scan.block: 65 units do not fit in layer 0, which has 64");
+  EXPECT_ERROR(ErrorOf(std::string(kBase) + "scan:\n  triples: 0\n"), "job.yaml:37:12:",
+               "scan.triples: expected a whole number in [1, 16777216], got 0");
+}
+
+TEST(SpecErrors, DasBlock) {
+  EXPECT_ERROR(ErrorOf(std::string(kBase) + "das:\n  dims: 40\n"), "job.yaml:37:9:",
+               "das.dims: the 2 aligned variables need 80 rotated dimensions, but layer 1 has only 64 units");
+  EXPECT_ERROR(ErrorOf(std::string(kBase) + "das:\n  layer: 3\n"), "job.yaml:37:10:",
+               "das.layer: layer 3 does not exist");
+  EXPECT_ERROR(ErrorOf(std::string(kBase) + "das:\n  lr: 0\n"), "job.yaml:37:7:",
+               "das.lr: expected a number in (0, 10], got 0");
+  EXPECT_ERROR(ErrorOf(Replace(kBase, "careful: {layer: 1, units: 16-31}", "careful: {layer: 2, units: 16-31}") +
+                       "das:\n  steps: 10\n"),
+               "job.yaml:37:3:", "das: the aligned variables sit in different layers");
+}
+
 }  // namespace
 }  // namespace graft::spec

@@ -1,0 +1,279 @@
+// Analysis of stored networks (issue 7): evaluate without training, controls in every report,
+// the alignment scan, DAS, and loading weights saved by Python. Each external reference is named
+// beside its check.
+#include <fstream>
+#include <set>
+#include <sstream>
+
+#include <torch/torch.h>
+
+#include "gtest/gtest.h"
+#include "nlohmann/json.hpp"
+#include "tests/test_util.h"
+#include "trainer/net/rotation.h"
+
+namespace graft {
+namespace {
+
+using json = nlohmann::json;
+using ::graft::testing::BinaryDir;
+using ::graft::testing::ReadFile;
+using ::graft::testing::RunCommand;
+using ::graft::testing::ScopedTempDir;
+using ::graft::testing::SourceDir;
+using ::graft::testing::SystemPython;
+
+std::string Worker() { return BinaryDir() + "/bin/graft-worker"; }
+std::string ParcelConfig() { return SourceDir() + "/configs/parcel-routing.yaml"; }
+std::string Script(const std::string& name) {
+  return std::string(SystemPython()) + " " + SourceDir() + "/tests/python/" + name;
+}
+json Json(const std::string& path) { return json::parse(ReadFile(path)); }
+
+// Two networks trained once for the whole suite with the shipped parcel-routing config (about
+// 3 s each): `aligned_` as shipped (local = layer 1 units 0-15, careful = layer 1 units 16-31),
+// and `moved_` with the sites moved to layer 2 units 32-47 and 48-63, so that neither a scan
+// nor a rotation that starts near the identity finds them by starting there.
+class AnalysisTest : public ::testing::Test {
+ protected:
+  static void SetUpTestSuite() {
+    dir_ = new ScopedTempDir();
+    aligned_ = dir_->path() + "/aligned";
+    moved_ = dir_->path() + "/moved";
+    auto a = RunCommand(Worker() + " run " + ParcelConfig() + " --out " + aligned_);
+    ASSERT_EQ(a.exit_code, 0) << a.output;
+    auto b = RunCommand(Worker() + " run " + ParcelConfig() + " --out " + moved_ + kMoved);
+    ASSERT_EQ(b.exit_code, 0) << b.output;
+  }
+  static void TearDownTestSuite() {
+    delete dir_;
+    dir_ = nullptr;
+  }
+  static constexpr const char* kMoved =
+      " --set alignment.local.layer=2 --set alignment.local.units=32-47"
+      " --set alignment.careful.layer=2 --set alignment.careful.units=48-63";
+  static ScopedTempDir* dir_;
+  static std::string aligned_, moved_;
+};
+ScopedTempDir* AnalysisTest::dir_ = nullptr;
+std::string AnalysisTest::aligned_, AnalysisTest::moved_;
+
+// The rotation's own contract: R = matrix_exp(S) with S = A - A^T. Orthogonality (R^T R = I) is
+// the definition of a rotation; SciPy's scipy.linalg.expm (Debian's /usr/bin/python3) is the
+// reference for the matrix exponential.
+TEST(Rotation, IsOrthogonalAndEqualsScipyExpmOfItsSkewMatrix) {
+  torch::manual_seed(11);
+  net::Rotation rot(12, /*init_scale=*/0.7);  // far from the identity
+  torch::NoGradGuard no_grad;
+  torch::Tensor r = rot->Matrix();
+  EXPECT_EQ(r.scalar_type(), torch::kFloat32);
+  const double orth = (r.t().matmul(r) - torch::eye(12)).abs().max().item<double>();
+  EXPECT_LE(orth, 1e-5);
+  EXPECT_GT((r - torch::eye(12)).abs().max().item<double>(), 0.1);
+  // The interchange is a patch in the rotated basis: with an all-false mask it gives the base back.
+  torch::Tensor b = torch::randn({5, 12}), s = torch::randn({5, 12});
+  EXPECT_TRUE(torch::allclose(rot->Interchange(b, s, torch::zeros({5, 12}, torch::kBool)), b, 1e-5, 1e-5));
+  EXPECT_TRUE(torch::allclose(rot->Interchange(b, s, torch::ones({5, 12}, torch::kBool)), s, 1e-5, 1e-5));
+  ScopedTempDir dir;
+  c10::Dict<std::string, torch::Tensor> dict;
+  dict.insert("rotation", rot->MatrixDouble().contiguous());
+  dict.insert("skew", rot->Skew().contiguous());
+  std::vector<char> bytes = torch::pickle_save(c10::IValue(dict));
+  ::graft::testing::WriteFile(dir.path() + "/rotation.pt", std::string(bytes.begin(), bytes.end()));
+  auto py = RunCommand(Script("check_rotation.py") + " " + dir.path() + "/rotation.pt --min-turn 0.1");
+  EXPECT_EQ(py.exit_code, 0) << py.output;
+  EXPECT_NE(py.output.find("checked 1 rotations"), std::string::npos) << py.output;
+}
+
+// `evaluate` on the run's own weights.pt gives the run's final figures exactly, controls included.
+TEST_F(AnalysisTest, EvaluateReproducesTheTrainingRunsFinalMetrics) {
+  ScopedTempDir out;
+  auto r = RunCommand(Worker() + " evaluate " + ParcelConfig() + " --weights " + aligned_ + "/weights.pt --out " +
+                      out.path());
+  ASSERT_EQ(r.exit_code, 0) << r.output;
+  json run = Json(aligned_ + "/result.json"), ev = Json(out.path() + "/evaluation.json");
+  for (const char* key : {"acc_train", "acc_test", "iia_test", "iia_changed_test", "iia_by_set", "unchanged_fraction",
+                          "iia_step0", "control_random_units", "confusion"}) {
+    ASSERT_TRUE(run.contains(key)) << key;
+    EXPECT_EQ(run[key], ev[key]) << key;
+  }
+  EXPECT_EQ(ReadFile(aligned_ + "/failures.jsonl"), ReadFile(out.path() + "/failures.jsonl"));
+  EXPECT_NE(r.output.find("IIA, changed cases only"), std::string::npos) << r.output;
+}
+
+// The controls of a run's result.json, checked against what they must be by construction.
+TEST_F(AnalysisTest, RunResultCarriesTheControls) {
+  json res = Json(aligned_ + "/result.json");
+  std::istringstream metrics(ReadFile(aligned_ + "/metrics.jsonl"));
+  std::string first;
+  std::getline(metrics, first);
+  json step0 = json::parse(first);
+  ASSERT_EQ(step0["step"], 0);
+  EXPECT_EQ(res["iia_step0"]["iia_test"], step0["iia_test"]);
+  EXPECT_EQ(res["iia_step0"]["iia_changed_test"], step0["iia_changed_test"]);
+  // Random units: as many as the real site, in the same layer, none of the real units.
+  const json& sites = res["control_random_units"]["sites"];
+  std::set<int> real;
+  for (int u = 0; u < 32; ++u) real.insert(u);
+  for (const char* var : {"local", "careful"}) {
+    EXPECT_EQ(sites[var]["layer"], 1) << var;
+    ASSERT_EQ(sites[var]["units"].size(), 16u) << var;
+    for (int u : sites[var]["units"]) EXPECT_EQ(real.count(u), 0u) << var << " unit " << u;
+  }
+  // The IIT network ignores its unaligned units, so swapping them changes nothing: the control
+  // scores the unchanged floor overall and 0 on changed cases, far below the real alignment.
+  EXPECT_EQ(res["control_random_units"]["iia_changed_test"]["correct"], 0);
+  EXPECT_GE(res["iia_changed_test"]["value"].get<double>(), 0.98);
+  // The confusion table: per set, rows sum to the set's triples, the diagonal to its correct ones.
+  const json& conf = res["confusion"];
+  EXPECT_EQ(conf["classes"], json({"van", "truck", "bike", "courier"}));
+  int64_t failures_expected = 0;
+  for (const char* set : {"local", "careful", "local+careful"}) {
+    int64_t total = 0, diagonal = 0;
+    for (size_t e = 0; e < 4; ++e) {
+      for (size_t p = 0; p < 4; ++p) {
+        total += conf["by_set"][set][e][p].get<int64_t>();
+        if (e == p) diagonal += conf["by_set"][set][e][p].get<int64_t>();
+      }
+    }
+    EXPECT_EQ(total, res["iia_by_set"][set]["n"].get<int64_t>()) << set;
+    EXPECT_EQ(diagonal, res["iia_by_set"][set]["correct"].get<int64_t>()) << set;
+    failures_expected += total - diagonal;
+  }
+  // failures.jsonl: min(200, failing triples) lines, each with symbols.
+  std::istringstream lines(ReadFile(aligned_ + "/failures.jsonl"));
+  std::string line;
+  int64_t count = 0;
+  while (std::getline(lines, line)) {
+    json f = json::parse(line);
+    EXPECT_TRUE(f["base"]["origin"].is_string());
+    EXPECT_NE(f["expected"], f["predicted"]);
+    ++count;
+  }
+  EXPECT_EQ(count, std::min<int64_t>(200, failures_expected));
+}
+
+// A standard-training run has failing triples: the file then holds exactly 200 (the cap).
+TEST(Controls, FailuresAreCappedAt200AndNamedWithSymbols) {
+  ScopedTempDir dir;
+  auto r = RunCommand(Worker() + " run " + ParcelConfig() + " --out " + dir.path() +
+                      " --set training.steps=200 --set training.loss_weights.interchange=0");
+  ASSERT_EQ(r.exit_code, 0) << r.output;
+  json res = Json(dir.path() + "/result.json");
+  ASSERT_GT(res["iia_test"]["n"].get<int64_t>() - res["iia_test"]["correct"].get<int64_t>(), 200);
+  std::istringstream lines(ReadFile(dir.path() + "/failures.jsonl"));
+  std::string line;
+  int count = 0;
+  const std::set<std::string> routes = {"van", "truck", "bike", "courier"};
+  while (std::getline(lines, line)) {
+    json f = json::parse(line);
+    EXPECT_EQ(routes.count(f["expected"].get<std::string>()), 1u) << line;
+    EXPECT_EQ(routes.count(f["predicted"].get<std::string>()), 1u) << line;
+    EXPECT_TRUE(f["source"]["fragile"] == "true" || f["source"]["fragile"] == "false") << line;
+    ++count;
+  }
+  EXPECT_EQ(count, 200);
+}
+
+// A network trained with IIT at a site scans best at that site (both variables), among all
+// three layers in blocks of 16.
+TEST_F(AnalysisTest, ScanFindsTheSitesIitTrainedAt) {
+  ScopedTempDir out;
+  auto r = RunCommand(Worker() + " scan " + ParcelConfig() + " --weights " + moved_ + "/weights.pt --out " +
+                      out.path() + kMoved + " --set scan.block=16 --set scan.random_subsets=2");
+  ASSERT_EQ(r.exit_code, 0) << r.output;
+  json scan = Json(out.path() + "/scan.json");
+  const json& local = scan["variables"]["local"]["best"];
+  EXPECT_EQ(local["layer"], 2);
+  EXPECT_EQ(local["units"].front(), 32);
+  EXPECT_EQ(local["units"].back(), 47);
+  const json& careful = scan["variables"]["careful"]["best"];
+  EXPECT_EQ(careful["layer"], 2);
+  EXPECT_EQ(careful["units"].front(), 48);
+  EXPECT_EQ(careful["units"].back(), 63);
+  EXPECT_GE(local["iia_changed"]["value"].get<double>(), 0.98);
+  // 3 layers x (4 blocks + 2 random subsets) candidates per variable, one table row each.
+  EXPECT_EQ(scan["variables"]["local"]["candidates"].size(), 18u);
+  const std::string table = ReadFile(out.path() + "/scan.tsv");
+  EXPECT_EQ(std::count(table.begin(), table.end(), '\n'), 1 + 2 * 18);
+  const std::string svg = ReadFile(out.path() + "/scan.svg");
+  EXPECT_EQ(svg.rfind("<svg", 0), 0u);
+  EXPECT_EQ(std::count(svg.begin(), svg.end(), '\n') > 10, true);
+  EXPECT_NE(r.output.find("local: best site layer 2 units 32-47"), std::string::npos) << r.output;
+  EXPECT_NE(r.output.find("scan careful: 18/18 candidates"), std::string::npos) << r.output;
+}
+
+// DAS on the IIT network finds IIA near 1 at the aligned layer, while the same search on the
+// untrained network of the same shape stays far lower (the DAS paper's finding, Geiger, Wu et
+// al. 2023, from memory). The rotated slices start at dimensions 0-15 and 16-31, and the units
+// 0-15 and 16-31 of layer 2 carry no alignment (checked below with evaluate), so the search has
+// to learn a real rotation; check_rotation.py checks it against SciPy.
+TEST_F(AnalysisTest, DasFindsTheAlignmentWhileTheUntrainedControlDoesNot) {
+  ScopedTempDir out;
+  const std::string moved_weights = moved_ + "/weights.pt";
+  auto guess = RunCommand(Worker() + " evaluate " + ParcelConfig() + " --weights " + moved_weights + " --out " +
+                          out.path() + "/guess --set alignment.local.layer=2 --set alignment.careful.layer=2");
+  ASSERT_EQ(guess.exit_code, 0) << guess.output;
+  EXPECT_LE(Json(out.path() + "/guess/evaluation.json")["iia_changed_test"]["value"].get<double>(), 0.5);
+
+  auto r = RunCommand(Worker() + " das " + ParcelConfig() + " --weights " + moved_weights + " --out " + out.path() +
+                      kMoved + " --set das.steps=300");
+  ASSERT_EQ(r.exit_code, 0) << r.output;
+  json das = Json(out.path() + "/das.json");
+  EXPECT_EQ(das["layer"], 2);
+  const json& found = das["network"];
+  const json& control = das["control_untrained_network"];
+  EXPECT_GE(found["iia_test"]["value"].get<double>(), 0.97) << found;
+  EXPECT_GE(found["iia_changed_test"]["value"].get<double>(), 0.95) << found;
+  EXPECT_LE(control["iia_changed_test"]["value"].get<double>(), 0.6) << control;
+  EXPECT_LT(control["iia_changed_test"]["hi"].get<double>(), found["iia_changed_test"]["lo"].get<double>());
+  auto py = RunCommand(Script("check_rotation.py") + " " + out.path() + "/rotation.pt --min-turn 0.1");
+  EXPECT_EQ(py.exit_code, 0) << py.output;
+  EXPECT_NE(py.output.find("checked 2 rotations"), std::string::npos) << py.output;
+}
+
+// A dict saved by Python's torch.save (zip format, float64; written by Debian's /usr/bin/python3)
+// evaluates to the same figures as the graft network with the same parameters.
+TEST_F(AnalysisTest, PythonSavedDictEvaluatesLikeTheGraftNetwork) {
+  ScopedTempDir out;
+  auto py = RunCommand(Script("resave_weights.py") + " " + aligned_ + "/weights.pt " + out.path() + "/py.pt");
+  ASSERT_EQ(py.exit_code, 0) << py.output;
+  ASSERT_NE(py.output.find("zip format"), std::string::npos) << py.output;
+  auto a = RunCommand(Worker() + " evaluate " + ParcelConfig() + " --weights " + out.path() + "/py.pt --out " +
+                      out.path() + "/py");
+  ASSERT_EQ(a.exit_code, 0) << a.output;
+  auto b = RunCommand(Worker() + " evaluate " + ParcelConfig() + " --weights " + aligned_ + "/weights.pt --out " +
+                      out.path() + "/graft");
+  ASSERT_EQ(b.exit_code, 0) << b.output;
+  json ja = Json(out.path() + "/py/evaluation.json"), jb = Json(out.path() + "/graft/evaluation.json");
+  for (const char* key : {"acc_test", "iia_test", "iia_changed_test", "iia_by_set", "control_random_units"}) {
+    EXPECT_EQ(ja[key], jb[key]) << key;
+  }
+}
+
+TEST_F(AnalysisTest, WeightsThatDoNotFitAreRefusedNamingTensorsAndShapes) {
+  ScopedTempDir out;
+  auto py = RunCommand(Script("resave_weights.py") + " " + aligned_ + "/weights.pt " + out.path() + "/bad.pt --break");
+  ASSERT_EQ(py.exit_code, 0) << py.output;
+  auto r = RunCommand(Worker() + " evaluate " + ParcelConfig() + " --weights " + out.path() + "/bad.pt --out " +
+                      out.path() + "/e");
+  EXPECT_EQ(r.exit_code, 2) << r.output;
+  EXPECT_NE(r.output.find("'hidden.0.weight' has shape [64, 31] but the config needs [64, 32]"), std::string::npos)
+      << r.output;
+  EXPECT_NE(r.output.find("missing: out.bias"), std::string::npos) << r.output;
+  EXPECT_NE(r.output.find("not part of this config's network: decoder.weight"), std::string::npos) << r.output;
+  // A config whose network differs is refused the same way; a missing file is exit 1 with its name.
+  auto w = RunCommand(Worker() + " evaluate " + ParcelConfig() + " --weights " + aligned_ +
+                      "/weights.pt --set network.hidden=[64,64] --set alignment.local.layer=0 "
+                      "--set alignment.careful.layer=0 --out " + out.path() + "/w");
+  EXPECT_EQ(w.exit_code, 2) << w.output;
+  EXPECT_NE(w.output.find("not part of this config's network: hidden.2.bias, hidden.2.weight"), std::string::npos)
+      << w.output;
+  auto m = RunCommand(Worker() + " evaluate " + ParcelConfig() + " --weights " + out.path() + "/none.pt --out " +
+                      out.path() + "/m");
+  EXPECT_EQ(m.exit_code, 1) << m.output;
+  EXPECT_NE(m.output.find("none.pt: cannot open the weights file"), std::string::npos) << m.output;
+}
+
+}  // namespace
+}  // namespace graft
