@@ -1,7 +1,7 @@
 // Runs one job in-process: IIT (or standard training when the interchange weight is 0) of the
 // job's MLP, evaluation with intervals at the configured cadence, checkpoints, and the
-// artifacts of a run directory (spec.yaml, metrics.jsonl, result.json, checkpoint.pt,
-// weights.pt). Torch-free header: the worker's commands include it without LibTorch.
+// artifacts of a run directory (spec.yaml, metrics.jsonl, result.json with the controls,
+// failures.jsonl, checkpoint.pt, weights.pt). Torch-free header: the worker's commands include it without LibTorch.
 // Thread-safety: one Train() call per process at a time (it sets process-wide thread counts).
 #ifndef GRAFT_TRAINER_TRAIN_TRAINER_H_
 #define GRAFT_TRAINER_TRAIN_TRAINER_H_
