@@ -1,0 +1,871 @@
+// The `graft` client: its commands called as functions against graftd and graft-worker running
+// as real processes on loopback (tests/cluster.h), the `graft` binary's exit codes, a Python
+// script on Debian's python3-grpcio, and its pieces (t quantile, SHA-256, settings, rendering)
+// against outside references: SciPy, FIPS 180-2's worked examples, coreutils' sha256sum.
+#include <cmath>
+#include <cstdio>
+#include <fstream>
+#include <map>
+#include <set>
+#include <sstream>
+#include <thread>
+
+#include "client/api.h"
+#include "client/commands.h"
+#include "client/render.h"
+#include "client/settings.h"
+#include "client/sha256.h"
+#include "client/stats.h"
+#include "gtest/gtest.h"
+#include "nlohmann/json.hpp"
+#include "tests/cluster.h"
+#include "tests/test_util.h"
+#include "trainer/spec/spec.h"
+
+namespace graft {
+namespace {
+
+using json = nlohmann::json;
+using ::graft::testing::Cluster;
+using ::graft::testing::kAlice;
+using ::graft::testing::ReadFile;
+using ::graft::testing::RunCommand;
+using ::graft::testing::ScopedTempDir;
+using ::graft::testing::SourceDir;
+using ::graft::testing::BinaryDir;
+using ::graft::testing::WaitFor;
+using ::graft::testing::WriteFile;
+
+// Small jobs that finish in well under a second of training.
+const std::vector<std::string> kTiny = {"training.steps=40",         "training.batch_size=64",
+                                        "evaluation.every=20",       "evaluation.triples=256",
+                                        "network.hidden=[16,16,16]", "alignment.local.units=0-3",
+                                        "alignment.careful.units=4-7"};
+// The same, made to fail at run time: plain SGD with a huge step on a huge loss gives a NaN loss
+// within a few steps (seen: "the loss became nan at step 3").
+const std::vector<std::string> kDiverges = {"training.optimizer.type=sgd", "training.optimizer.lr=10",
+                                            "training.loss_weights.task=1000000",
+                                            "training.loss_weights.interchange=1000000"};
+
+std::vector<std::string> Plus(std::vector<std::string> a, const std::vector<std::string>& b) {
+  a.insert(a.end(), b.begin(), b.end());
+  return a;
+}
+
+int64_t NowMs() {
+  return std::chrono::duration_cast<std::chrono::milliseconds>(std::chrono::system_clock::now().time_since_epoch())
+      .count();
+}
+
+// Output of one command called in-process.
+struct Ran {
+  int code = -1;
+  std::string out, err;
+};
+
+template <typename F>
+Ran Call(F&& f, bool terminal = false) {
+  std::ostringstream out, err;
+  client::Io io(out, err);
+  io.out_is_terminal = terminal;
+  io.width = 100;
+  io.now_ms = NowMs;
+  io.server = "test";
+  Ran r;
+  r.code = f(io);
+  r.out = out.str();
+  r.err = err.str();
+  return r;
+}
+
+std::unique_ptr<client::Api> ApiFor(Cluster& c, const std::string& token = kAlice) {
+  client::Connection conn;
+  conn.server = c.address();
+  conn.token = token;
+  return client::CreateGrpcApi(conn);
+}
+
+std::vector<std::string> Lines(const std::string& text) {
+  std::vector<std::string> out;
+  std::istringstream in(text);
+  for (std::string l; std::getline(in, l);) {
+    if (!l.empty()) out.push_back(l);
+  }
+  return out;
+}
+
+std::string ParcelConfigWith(const std::string& extra) {
+  std::string text = ReadFile(SourceDir() + "/configs/parcel-routing.yaml");
+  if (!text.empty() && text.back() != '\n') text += "\n";
+  return text + extra;
+}
+
+// The `graft` binary with a cluster's address and a token.
+testing::CommandResult Graft(Cluster& c, const std::string& args) {
+  return RunCommand(BinaryDir() + "/bin/graft --server " + c.address() + " --token " + kAlice + " " + args);
+}
+
+// ---------------------------------------------------------------------------------------------
+// Sweeps through the client.
+
+TEST(ClientSweep, ExpandsGridTogetherSampleAndSeedsIntoTheRightJobs) {
+  Cluster c;  // no worker: the jobs stay queued, which is all this test needs
+  auto api = ApiFor(c);
+  ScopedTempDir dir;
+  const std::string file = dir.path() + "/routing-sweep.yaml";
+  WriteFile(file, ParcelConfigWith(R"(sweep:
+  grid:
+    training.loss_weights.interchange: [0.0, 1.0]
+  together:
+    - {alignment.local.layer: [0, 2], alignment.careful.layer: [0, 2]}
+  sample:
+    count: 2
+    seed: 5
+    params:
+      training.optimizer.lr: {log_between: [0.0003, 0.01]}
+      network.embedding.dim: {one_of: [4, 8]}
+  seeds: [1, 2]
+)"));
+  client::SubmitArgs args;
+  args.file = file;
+  args.overrides = {"training.steps=40"};
+  args.json = true;
+  Ran r = Call([&](client::Io& io) { return client::SubmitCommand(*api, args, io); });
+  ASSERT_EQ(r.code, 0) << r.err;
+  json resp = json::parse(r.out);
+  ASSERT_FALSE(resp["sweep_id"].get<std::string>().empty());
+  // 2 (grid) x 2 (together) x 2 (sample) x 2 (seeds).
+  ASSERT_EQ(resp["job_ids"].size(), 16u) << r.out;
+
+  std::set<std::string> names, lrs;
+  std::vector<std::string> wrong_names;
+  size_t k = 0;
+  for (double interchange : {0.0, 1.0}) {
+    for (int layer : {0, 2}) {
+      for (int draw = 0; draw < 2; ++draw) {
+        for (int seed : {1, 2}) {
+          const std::string id = resp["job_ids"][k++];
+          v1::Job job = c.Get(id);
+          EXPECT_EQ(job.sweep_id(), resp["sweep_id"]);
+          EXPECT_EQ(job.total_steps(), 40);
+          auto loaded = spec::LoadJobFromText(job.spec_yaml(), id + "/spec.yaml", {});
+          ASSERT_TRUE(loaded.ok()) << loaded.status();
+          const spec::JobSpec& s = loaded->spec;
+          EXPECT_EQ(s.training.interchange_weight, interchange) << id;
+          ASSERT_EQ(s.alignment.size(), 2u);
+          EXPECT_EQ(s.alignment[0].layer, layer) << id;
+          EXPECT_EQ(s.alignment[1].layer, layer) << id;
+          EXPECT_EQ(s.seed, static_cast<uint64_t>(seed)) << id;
+          EXPECT_GE(s.training.optimizer.lr, 0.0003) << id;
+          EXPECT_LE(s.training.optimizer.lr, 0.01) << id;
+          EXPECT_TRUE(s.network.embedding_dim == 4 || s.network.embedding_dim == 8) << id;
+          EXPECT_EQ(s.training.steps, 40);
+          // The name: the config's name, the varied values (the two layers vary together with
+          // the same values, so one "layer=", as in the issue's example
+          // "parcel-routing/interchange=0,layer=1/seed=2"), then the seed. The drawn lr is named
+          // with three significant digits.
+          const size_t lr_at = job.name().find(",lr=");
+          ASSERT_NE(lr_at, std::string::npos) << job.name();
+          const std::string lr_text = job.name().substr(lr_at + 4, job.name().find(",dim=") - lr_at - 4);
+          EXPECT_NEAR(std::strtod(lr_text.c_str(), nullptr), s.training.optimizer.lr, 0.005 * s.training.optimizer.lr)
+              << job.name();
+          const std::string expected = "parcel-routing/interchange=" + std::string(interchange == 0 ? "0" : "1") +
+                                       ",layer=" + std::to_string(layer) + ",lr=" + lr_text +
+                                       ",dim=" + std::to_string(s.network.embedding_dim) + "/seed=" + std::to_string(seed);
+          if (job.name() != expected) wrong_names.push_back(job.name() + " (expected " + expected + ")");
+          EXPECT_EQ(s.name, job.name());
+          names.insert(job.name());
+          char lr[32];
+          std::snprintf(lr, sizeof(lr), "%.17g", s.training.optimizer.lr);
+          lrs.insert(lr);
+        }
+      }
+    }
+  }
+  EXPECT_TRUE(wrong_names.empty()) << wrong_names.size() << " of 16 names differ, e.g. " << wrong_names.front();
+  EXPECT_EQ(names.size(), 16u);
+  EXPECT_EQ(lrs.size(), 2u);  // two random draws, shared by every grid point
+
+  // `list --sweep` pages through and finds the same 16.
+  client::ListArgs la;
+  la.sweep = resp["sweep_id"];
+  la.json = true;
+  Ran listed = Call([&](client::Io& io) { return client::ListCommand(*api, la, io); });
+  ASSERT_EQ(listed.code, 0) << listed.err;
+  EXPECT_EQ(json::parse(listed.out).size(), 16u);
+}
+
+TEST(ClientSweep, AnInvalidCombinationRejectsTheWholeSweepAndStoresNothing) {
+  Cluster c;
+  auto api = ApiFor(c);
+  ScopedTempDir dir;
+  const std::string file = dir.path() + "/bad-sweep.yaml";
+  // Layer 7 does not exist in a network of three hidden layers: combination 2 of 4 is invalid.
+  WriteFile(file, ParcelConfigWith("sweep:\n  grid:\n    alignment.local.layer: [1, 7]\n  seeds: [1, 2]\n"));
+  // Through the server directly (no local check), to get the server's own message.
+  v1::SubmitJobRequest req;
+  req.set_config_yaml(ReadFile(file));
+  req.set_source_name(file);
+  v1::SubmitJobResponse resp;
+  grpc::Status s = c.jobs().SubmitJob(c.Ctx(kAlice).get(), req, &resp);
+  ASSERT_EQ(s.error_code(), grpc::StatusCode::INVALID_ARGUMENT);
+  EXPECT_NE(s.error_message().find("sweep combination 3 of 4 (alignment.local.layer=7, seed=1)"), std::string::npos)
+      << s.error_message();
+
+  // `check` (offline) prints exactly the server's message.
+  client::CheckArgs ca;
+  ca.file = file;
+  Ran checked = Call([&](client::Io& io) { return client::CheckCommand(ca, io); });
+  EXPECT_EQ(checked.code, client::kExitInvalidConfig);
+  EXPECT_EQ(checked.err, s.error_message() + "\n");
+  EXPECT_EQ(checked.out, "");
+
+  // `submit` refuses it with the same message and exit code 2.
+  client::SubmitArgs sa;
+  sa.file = file;
+  Ran submitted = Call([&](client::Io& io) { return client::SubmitCommand(*api, sa, io); });
+  EXPECT_EQ(submitted.code, client::kExitInvalidConfig);
+  EXPECT_EQ(submitted.err, s.error_message() + "\n");
+
+  // Nothing was stored.
+  client::ListArgs la;
+  la.json = true;
+  Ran listed = Call([&](client::Io& io) { return client::ListCommand(*api, la, io); });
+  ASSERT_EQ(listed.code, 0) << listed.err;
+  EXPECT_EQ(json::parse(listed.out), json::array());
+  v1::ListJobsRequest lr;
+  v1::ListJobsResponse lresp;
+  ASSERT_TRUE(c.jobs().ListJobs(c.Ctx(testing::kRoot).get(), lr, &lresp).ok());
+  EXPECT_EQ(lresp.jobs_size(), 0);
+
+  // A broken lone config: the same message from `check`, from the server and from the binary.
+  const std::string typo = dir.path() + "/typo.yaml";
+  WriteFile(typo, ParcelConfigWith("").replace(ParcelConfigWith("").find("activation: relu"), 16, "activation: rleu"));
+  req.set_config_yaml(ReadFile(typo));
+  req.set_source_name(typo);
+  s = c.jobs().SubmitJob(c.Ctx(kAlice).get(), req, &resp);
+  ASSERT_EQ(s.error_code(), grpc::StatusCode::INVALID_ARGUMENT);
+  EXPECT_NE(s.error_message().find("did you mean 'relu'?"), std::string::npos) << s.error_message();
+  ca.file = typo;
+  checked = Call([&](client::Io& io) { return client::CheckCommand(ca, io); });
+  EXPECT_EQ(checked.code, client::kExitInvalidConfig);
+  EXPECT_EQ(checked.err, s.error_message() + "\n");
+  auto bin = RunCommand(BinaryDir() + "/bin/graft check " + typo + " 2>&1");
+  EXPECT_EQ(bin.exit_code, 2);
+  EXPECT_EQ(bin.output, s.error_message() + "\n");
+}
+
+// ---------------------------------------------------------------------------------------------
+// watch.
+
+struct Watched {
+  std::vector<int64_t> steps;                  // points in the order received
+  std::map<int64_t, json> metrics;             // step -> metrics
+  std::vector<std::string> states;
+};
+
+Watched ParseWatchJson(const std::string& out) {
+  Watched w;
+  for (const auto& line : Lines(out)) {
+    json e = json::parse(line);
+    if (e["type"] == "point") {
+      w.steps.push_back(e["step"]);
+      w.metrics[e["step"]] = e["metrics"];
+    } else if (e["type"] == "state") {
+      w.states.push_back(e["job"]["state"]);
+    }
+  }
+  return w;
+}
+
+TEST(ClientWatch, FromStepZeroAndFromAMiddleStepSeesEveryPointOnce) {
+  Cluster c;
+  auto worker = c.StartWorker("w1");
+  const std::string id = c.Submit(kAlice, "parcel-routing",
+                                  Plus(kTiny, {"training.steps=600", "evaluation.every=30", "training.checkpoint_every=300"}));
+  ASSERT_FALSE(id.empty());
+  // Watcher A from step 0, started while the job is queued or just running.
+  Ran a;
+  std::thread ta([&] {
+    auto api = ApiFor(c);
+    client::WatchArgs w;
+    w.id = id;
+    w.json = true;
+    w.timeout_ms = 120000;
+    a = Call([&](client::Io& io) { return client::WatchCommand(*api, w, io); });
+  });
+  // Watcher B from step 300, started once the job has passed step 150 (or ended).
+  ASSERT_TRUE(WaitFor([&] { return c.Get(id).step() >= 150 || client::IsFinal(c.Get(id).state()); }, 60000));
+  Ran b;
+  std::thread tb([&] {
+    auto api = ApiFor(c);
+    client::WatchArgs w;
+    w.id = id;
+    w.from_step = 300;
+    w.json = true;
+    w.timeout_ms = 120000;
+    b = Call([&](client::Io& io) { return client::WatchCommand(*api, w, io); });
+  });
+  ta.join();
+  tb.join();
+  ASSERT_EQ(a.code, 0) << a.err << c.Log() << ReadFile(worker->log_path());
+  ASSERT_EQ(b.code, 0) << b.err;
+  const std::vector<v1::MetricPoint> stored = c.Metrics(id);
+  ASSERT_EQ(stored.size(), 21u);  // 0, 30, ..., 600
+  std::vector<int64_t> all, from_300;
+  for (const auto& p : stored) {
+    all.push_back(p.step());
+    if (p.step() >= 300) from_300.push_back(p.step());
+  }
+  Watched wa = ParseWatchJson(a.out), wb = ParseWatchJson(b.out);
+  EXPECT_EQ(wa.steps, all);  // each once, in order
+  EXPECT_EQ(wb.steps, from_300);
+  for (const auto& p : stored) {
+    EXPECT_EQ(wa.metrics[p.step()], json::parse(p.metrics_json())) << p.step();
+    if (p.step() >= 300) {
+      EXPECT_EQ(wb.metrics[p.step()], json::parse(p.metrics_json())) << p.step();
+    }
+  }
+  ASSERT_FALSE(wa.states.empty());
+  EXPECT_EQ(wa.states.back(), "succeeded");
+  EXPECT_EQ(wb.states.back(), "succeeded");
+
+  // Piped: one plain line per point, no escape sequences.
+  auto api = ApiFor(c);
+  client::WatchArgs w;
+  w.id = id;
+  Ran plain = Call([&](client::Io& io) { return client::WatchCommand(*api, w, io); });
+  EXPECT_EQ(plain.code, 0);
+  EXPECT_EQ(plain.out.find('\x1b'), std::string::npos);
+  int point_lines = 0;
+  for (const auto& l : Lines(plain.out)) point_lines += l.find(" step ") != std::string::npos;
+  EXPECT_EQ(point_lines, 21) << plain.out;
+  // On a terminal: redrawn in place, with labelled axes and a legend.
+  Ran tty = Call([&](client::Io& io) { return client::WatchCommand(*api, w, io); }, true);
+  EXPECT_EQ(tty.code, 0);
+  EXPECT_NE(tty.out.find("\x1b[J"), std::string::npos);
+  for (const char* s : {"accuracy", "1.00 |", "0.50 |", "0.00 |", "steps", "600", "task accuracy (acc_test)",
+                        "IIA, set local (iia_by_set)", "IIA, set local+careful (iia_by_set)"}) {
+    EXPECT_NE(tty.out.find(s), std::string::npos) << s << "\n" << tty.out;
+  }
+}
+
+// ---------------------------------------------------------------------------------------------
+// wait, cancel, resubmit: exit codes of the real binary.
+
+TEST(ClientWait, ExitCodesForSucceededFailedCancelledAndTimeout) {
+  Cluster c;
+  auto worker = c.StartWorker("w1");
+  ScopedTempDir dir;
+  const std::string config = SourceDir() + "/configs/parcel-routing.yaml";
+  std::string sets;
+  for (const auto& s : kTiny) sets += " --set " + s;
+
+  auto ok = Graft(c, "submit " + config + sets + " --json");
+  ASSERT_EQ(ok.exit_code, 0) << ok.output;
+  const std::string ok_id = json::parse(ok.output)["job_id"];
+  auto waited = Graft(c, "wait " + ok_id + " --timeout 120");
+  EXPECT_EQ(waited.exit_code, 0) << waited.output << ReadFile(worker->log_path());
+  EXPECT_NE(waited.output.find(ok_id + " succeeded"), std::string::npos) << waited.output;
+
+  std::string bad_sets = sets;
+  for (const auto& s : kDiverges) bad_sets += " --set " + s;
+  auto bad = Graft(c, "submit " + config + bad_sets + " --json");
+  ASSERT_EQ(bad.exit_code, 0) << bad.output;
+  const std::string bad_id = json::parse(bad.output)["job_id"];
+  waited = Graft(c, "wait " + bad_id + " --timeout 120");
+  EXPECT_EQ(waited.exit_code, 4) << waited.output;
+  EXPECT_NE(waited.output.find("nan"), std::string::npos) << waited.output;  // the worker's reason
+  EXPECT_EQ(c.Get(bad_id).state(), v1::JOB_STATE_FAILED);
+
+  // A sweep whose second job diverges: wait on the sweep is 4, and names the failed job.
+  const std::string sweep_file = dir.path() + "/one-bad.yaml";
+  WriteFile(sweep_file, ParcelConfigWith(R"(sweep:
+  together:
+    - {training.optimizer.lr: [0.001, 10], training.loss_weights.task: [1, 1000000], training.loss_weights.interchange: [1, 1000000]}
+)"));
+  auto sw = Graft(c, "submit " + sweep_file + sets + " --set training.optimizer.type=sgd --json");
+  ASSERT_EQ(sw.exit_code, 0) << sw.output;
+  json swj = json::parse(sw.output);
+  waited = Graft(c, "wait " + swj["sweep_id"].get<std::string>() + " --timeout 120");
+  EXPECT_EQ(waited.exit_code, 4) << waited.output;
+  EXPECT_NE(waited.output.find("1 succeeded, 1 failed"), std::string::npos) << waited.output;
+  EXPECT_NE(waited.output.find(swj["job_ids"][1].get<std::string>() + " "), std::string::npos) << waited.output;
+
+  // A long job: wait --timeout gives 7, cancel, then wait gives 5.
+  auto longer = Graft(c, "submit " + config + sets + " --set training.steps=1000000 --set evaluation.every=1000 --json");
+  ASSERT_EQ(longer.exit_code, 0) << longer.output;
+  const std::string long_id = json::parse(longer.output)["job_id"];
+  ASSERT_TRUE(c.WaitState(long_id, v1::JOB_STATE_RUNNING, 60000));
+  waited = Graft(c, "wait " + long_id + " --timeout 1");
+  EXPECT_EQ(waited.exit_code, 7) << waited.output;
+  auto cancelled = Graft(c, "cancel " + long_id + " --reason 'enough'");
+  EXPECT_EQ(cancelled.exit_code, 0) << cancelled.output;
+  waited = Graft(c, "wait " + long_id + " --timeout 60");
+  EXPECT_EQ(waited.exit_code, 5) << waited.output;
+  // Cancelling it again is refused (1); so is resubmitting a succeeded job.
+  EXPECT_EQ(Graft(c, "cancel " + long_id).exit_code, 1);
+  auto again = Graft(c, "resubmit " + ok_id);
+  EXPECT_EQ(again.exit_code, 1) << again.output;
+  EXPECT_NE(again.output.find("only a failed or cancelled job can be resubmitted"), std::string::npos);
+
+  // Resubmit the failed job: a new job with the same resolved spec.
+  auto re = Graft(c, "resubmit " + bad_id + " --json");
+  ASSERT_EQ(re.exit_code, 0) << re.output;
+  const std::string re_id = json::parse(re.output)["job_id"];
+  EXPECT_NE(re_id, bad_id);
+  v1::Job original = c.Get(bad_id), copy = c.Get(re_id);
+  EXPECT_EQ(copy.spec_yaml(), original.spec_yaml());
+  EXPECT_EQ(copy.name(), original.name());
+  EXPECT_EQ(copy.labels().at("resubmit_of"), bad_id);
+  waited = Graft(c, "wait " + re_id + " --timeout 120");
+  EXPECT_EQ(waited.exit_code, 4) << waited.output;  // the same spec diverges the same way
+
+  // Usage mistakes and an unreachable server.
+  EXPECT_EQ(Graft(c, "wait 12").exit_code, 3);
+  EXPECT_EQ(Graft(c, "wiat " + ok_id).exit_code, 3);
+  EXPECT_EQ(Graft(c, "list --state runing").exit_code, 3);
+  EXPECT_EQ(Graft(c, "show j-99999").exit_code, 1);
+  auto away = RunCommand(BinaryDir() + "/bin/graft --server 127.0.0.1:1 --token x list");
+  EXPECT_EQ(away.exit_code, 6) << away.output;
+  auto wrong = RunCommand(BinaryDir() + "/bin/graft --server " + c.address() + " --token nope list");
+  EXPECT_EQ(wrong.exit_code, 6) << wrong.output;
+}
+
+// ---------------------------------------------------------------------------------------------
+// compare, metrics and fetch on a finished sweep.
+
+// Student-t quantiles from SciPy for the given degrees of freedom (p = 0.975).
+std::map<int, double> ScipyT975(const std::set<int>& dfs) {
+  std::string list;
+  for (int d : dfs) list += (list.empty() ? "" : ",") + std::to_string(d);
+  auto r = RunCommand(std::string(testing::SystemPython()) +
+                      " -c 'from scipy import stats\nfor d in [" + list +
+                      "]: print(d, repr(float(stats.t.ppf(0.975, d))))'");
+  EXPECT_EQ(r.exit_code, 0) << r.output;
+  std::map<int, double> out;
+  std::istringstream in(r.output);
+  int d;
+  double t;
+  while (in >> d >> t) out[d] = t;
+  return out;
+}
+
+TEST(ClientCompare, MatchesAHandComputationAndMetricsParseBack) {
+  Cluster c;
+  auto w1 = c.StartWorker("w1");
+  auto w2 = c.StartWorker("w2");
+  auto api = ApiFor(c);
+  ScopedTempDir dir;
+  const std::string file = dir.path() + "/seeds.yaml";
+  WriteFile(file, ParcelConfigWith("sweep:\n  grid:\n    training.loss_weights.interchange: [0.0, 1.0]\n  seeds: [1, 2, 3]\n"));
+  client::SubmitArgs sa;
+  sa.file = file;
+  sa.overrides = kTiny;
+  sa.json = true;
+  Ran sub = Call([&](client::Io& io) { return client::SubmitCommand(*api, sa, io); });
+  ASSERT_EQ(sub.code, 0) << sub.err;
+  const std::string sweep = json::parse(sub.out)["sweep_id"];
+  ASSERT_EQ(json::parse(sub.out)["job_ids"].size(), 6u);
+  client::WatchArgs wa;
+  wa.id = sweep;
+  wa.timeout_ms = 150000;
+  Ran waited = Call([&](client::Io& io) { return client::WaitCommand(*api, wa, io); });
+  ASSERT_EQ(waited.code, 0) << waited.out << waited.err << c.Log();
+
+  // By hand: group the stored results by name without "/seed=N".
+  std::map<std::string, std::vector<double>> acc, iia;
+  std::map<std::string, int> seeds;
+  for (const auto& id : json::parse(sub.out)["job_ids"]) {
+    v1::Job job = c.Get(id);
+    ASSERT_EQ(job.state(), v1::JOB_STATE_SUCCEEDED);
+    const std::string name = job.name();
+    const std::string setting = name.substr(0, name.rfind("/seed="));
+    json r = json::parse(job.result_json());
+    acc[setting].push_back(r["acc_test"]["value"]);
+    iia[setting].push_back(r["iia_changed_test"]["value"]);
+    ++seeds[setting];
+  }
+  ASSERT_EQ(seeds.size(), 2u);
+  EXPECT_EQ(seeds["parcel-routing/interchange=0"], 3);
+  EXPECT_EQ(seeds["parcel-routing/interchange=1"], 3);
+  const std::map<int, double> t = ScipyT975({2});
+  ASSERT_EQ(t.count(2), 1u);
+  client::CompareArgs ca;
+  ca.id = sweep;
+  ca.format = "json";
+  Ran cmp = Call([&](client::Io& io) { return client::CompareCommand(*api, ca, io); });
+  ASSERT_EQ(cmp.code, 0) << cmp.err;
+  json out = json::parse(cmp.out);
+  ASSERT_EQ(out["settings"].size(), 2u);
+  for (const auto& s : out["settings"]) {
+    const std::string setting = s["setting"];
+    EXPECT_EQ(s["seeds"], 3);
+    for (const auto& [key, values] : {std::pair{"acc_test", acc[setting]}, std::pair{"iia_changed_test", iia[setting]}}) {
+      ASSERT_EQ(values.size(), 3u);
+      const double mean = (values[0] + values[1] + values[2]) / 3;
+      double ss = 0;
+      for (double v : values) ss += (v - mean) * (v - mean);
+      const double sd = std::sqrt(ss / 2);
+      const double half = t.at(2) * sd / std::sqrt(3.0);
+      EXPECT_NEAR(s[key]["mean"].get<double>(), mean, 1e-12) << setting << " " << key;
+      EXPECT_NEAR(s[key]["sd"].get<double>(), sd, 1e-12) << setting << " " << key;
+      EXPECT_NEAR(s[key]["lo"].get<double>(), mean - half, 1e-9) << setting << " " << key;
+      EXPECT_NEAR(s[key]["hi"].get<double>(), mean + half, 1e-9) << setting << " " << key;
+    }
+  }
+  ca.format = "table";
+  Ran table = Call([&](client::Io& io) { return client::CompareCommand(*api, ca, io); });
+  ASSERT_EQ(table.code, 0);
+  EXPECT_NE(table.out.find("parcel-routing/interchange=0"), std::string::npos) << table.out;
+  EXPECT_NE(table.out.find("SEEDS"), std::string::npos) << table.out;
+
+  // metrics: CSV and JSONL parse back to the stored points.
+  const std::string id = json::parse(sub.out)["job_ids"][0];
+  const std::vector<v1::MetricPoint> stored = c.Metrics(id);
+  ASSERT_EQ(stored.size(), 3u);  // steps 0, 20, 40
+  client::MetricsArgs ma;
+  ma.id = id;
+  ma.format = "jsonl";
+  Ran jl = Call([&](client::Io& io) { return client::MetricsCommand(*api, ma, io); });
+  ASSERT_EQ(jl.code, 0) << jl.err;
+  std::vector<std::string> lines = Lines(jl.out);
+  ASSERT_EQ(lines.size(), stored.size());
+  for (size_t i = 0; i < stored.size(); ++i) {
+    json line = json::parse(lines[i]);
+    EXPECT_EQ(line["attempt"], stored[i].attempt());
+    line.erase("attempt");
+    EXPECT_EQ(line, json::parse(stored[i].metrics_json())) << i;
+  }
+  ma.format = "csv";
+  Ran csv = Call([&](client::Io& io) { return client::MetricsCommand(*api, ma, io); });
+  ASSERT_EQ(csv.code, 0) << csv.err;
+  lines = Lines(csv.out);
+  ASSERT_EQ(lines.size(), stored.size() + 1);
+  auto split = [](const std::string& l) {
+    std::vector<std::string> cells;
+    std::string cell;
+    for (char ch : l) {
+      if (ch == ',') {
+        cells.push_back(cell);
+        cell.clear();
+      } else {
+        cell += ch;
+      }
+    }
+    cells.push_back(cell);
+    return cells;
+  };
+  const std::vector<std::string> header = split(lines[0]);
+  ASSERT_GE(header.size(), 2u);
+  EXPECT_EQ(header[0], "step");
+  EXPECT_EQ(header[1], "attempt");
+  for (const char* col : {"acc_test.value", "acc_test.lo", "acc_test.hi", "acc_test.correct", "acc_test.n",
+                          "iia_changed_test.value", "iia_by_set.local.value", "iia_by_set.local+careful.hi"}) {
+    EXPECT_NE(std::find(header.begin(), header.end(), col), header.end()) << col << " in " << lines[0];
+  }
+  for (size_t i = 0; i < stored.size(); ++i) {
+    const std::vector<std::string> cells = split(lines[i + 1]);
+    ASSERT_EQ(cells.size(), header.size());
+    EXPECT_EQ(std::stoll(cells[0]), stored[i].step());
+    EXPECT_EQ(std::stoi(cells[1]), stored[i].attempt());
+    json m = json::parse(stored[i].metrics_json());
+    int checked = 0;
+    for (size_t k = 2; k < header.size(); ++k) {
+      // Walk the stored object along the dotted column name (set names contain no dots).
+      json v = m;
+      std::string path = header[k];
+      // iia_by_set.<set>.<field>: the set name may hold '+', never '.'.
+      size_t start = 0;
+      for (size_t dot; (dot = path.find('.', start)) != std::string::npos; start = dot + 1) v = v[path.substr(start, dot - start)];
+      v = v[path.substr(start)];
+      if (v.is_null()) {
+        EXPECT_EQ(cells[k], "") << header[k];
+      } else if (v.is_number()) {
+        EXPECT_EQ(std::strtod(cells[k].c_str(), nullptr), v.get<double>()) << header[k] << " row " << i;
+      } else {
+        EXPECT_EQ(cells[k], v.is_string() ? v.get<std::string>() : v.dump()) << header[k];
+      }
+      ++checked;
+    }
+    EXPECT_GT(checked, 20);
+  }
+
+  // fetch: every artifact, SHA-256 checked; the digests agree with coreutils' sha256sum.
+  client::FetchArgs fa;
+  fa.id = id;
+  fa.out_dir = dir.path() + "/artifacts";
+  Ran fetched = Call([&](client::Io& io) { return client::FetchCommand(*api, fa, io); });
+  ASSERT_EQ(fetched.code, 0) << fetched.err;
+  for (const char* name : {"weights.pt", "metrics.jsonl", "result.json", "spec.yaml", "checkpoint.pt"}) {
+    const std::string path = fa.out_dir + "/" + name;
+    auto sum = RunCommand("sha256sum " + path);
+    ASSERT_EQ(sum.exit_code, 0) << name << ": " << sum.output << fetched.out;
+    const std::string digest = sum.output.substr(0, 64);
+    EXPECT_NE(fetched.out.find(path + "  "), std::string::npos) << fetched.out;
+    EXPECT_NE(fetched.out.find("sha256 " + digest + " verified"), std::string::npos) << name << "\n" << fetched.out;
+  }
+  EXPECT_EQ(json::parse(ReadFile(fa.out_dir + "/result.json")), json::parse(c.Get(id).result_json()));
+}
+
+// ---------------------------------------------------------------------------------------------
+// A script in another language: Python with Debian's grpcio and stubs generated at test time.
+
+TEST(ClientPython, AScriptSubmitsAJobAndPollsItToCompletion) {
+  Cluster c;
+  auto worker = c.StartWorker("w1");
+  std::string cmd = std::string(testing::SystemPython()) + " " + SourceDir() + "/tests/python/submit_and_poll.py" +
+                    " --address " + c.address() + " --token " + kAlice + " --proto-dir " + SourceDir() + "/proto" +
+                    " --config " + SourceDir() + "/configs/parcel-routing.yaml --timeout 120";
+  for (const auto& s : kTiny) cmd += " --set " + s;
+  auto r = RunCommand(cmd + " 2>&1");
+  ASSERT_EQ(r.exit_code, 0) << r.output << c.Log();
+  json out = json::parse(Lines(r.output).back());
+  EXPECT_EQ(out["state"], "JOB_STATE_SUCCEEDED");
+  EXPECT_EQ(out["points"], 3);
+  EXPECT_EQ(out["last_step"], 40);
+  v1::Job job = c.Get(out["job_id"]);
+  EXPECT_EQ(job.state(), v1::JOB_STATE_SUCCEEDED);
+  EXPECT_EQ(json::parse(job.result_json())["iia_test"]["value"], out["iia_test"]);
+}
+
+// ---------------------------------------------------------------------------------------------
+// Pieces, against outside references.
+
+TEST(ClientStats, TQuantileMatchesScipy) {
+  ScopedTempDir dir;
+  std::ostringstream lines;
+  int n = 0;
+  for (double p : {0.6, 0.9, 0.95, 0.975, 0.995, 0.9995, 0.025, 0.1}) {
+    for (double df : {1.0, 2.0, 3.0, 4.0, 5.0, 7.0, 10.0, 19.0, 30.0, 100.0, 1000.0, 2.5}) {
+      char buf[96];
+      std::snprintf(buf, sizeof(buf), "%.17g %.17g %.17g\n", p, df, client::StudentTQuantile(p, df));
+      lines << buf;
+      ++n;
+    }
+  }
+  WriteFile(dir.path() + "/t.txt", lines.str());
+  auto r = RunCommand(std::string(testing::SystemPython()) + " " + SourceDir() + "/tests/python/check_t_quantile.py " +
+                      dir.path() + "/t.txt 2>&1");
+  EXPECT_EQ(r.exit_code, 0) << r.output;
+  EXPECT_NE(r.output.find(std::to_string(n) + " quantiles"), std::string::npos) << r.output;
+}
+
+TEST(ClientStats, MeanIntervalByHand) {
+  // Closed forms of Student-t quantiles (handbook facts, from memory): df = 1 is the Cauchy
+  // distribution, t_p = tan(pi (p - 1/2)); df = 2 gives t_p = (2p - 1) / sqrt(2 p (1 - p)).
+  // For p = 0.975: 12.7062047361747 and 0.95 / sqrt(0.04875) = 4.30265272974946. (SciPy's
+  // t.ppf(0.975, 2) prints 4.302652729911275 on this machine, 1.6e-10 off the closed form.)
+  for (double p : {0.6, 0.9, 0.975, 0.995}) {
+    EXPECT_NEAR(client::StudentTQuantile(p, 1), std::tan(M_PI * (p - 0.5)), 1e-12 * std::tan(M_PI * (p - 0.5))) << p;
+    const double t2 = (2 * p - 1) / std::sqrt(2 * p * (1 - p));
+    EXPECT_NEAR(client::StudentTQuantile(p, 2), t2, 1e-13 * t2) << p;
+  }
+  // 0.9, 0.8, 1.0: mean 0.9, sd sqrt((0.01 + 0.01 + 0) / 2) = 0.1, so the half-width of the 95%
+  // interval is 4.30265272974946 * 0.1 / sqrt(3) = 0.430265273 / 1.732050808 = 0.2484137712.
+  client::MeanInterval m = client::MeanWithInterval({0.9, 0.8, 1.0});
+  EXPECT_EQ(m.n, 3);
+  EXPECT_NEAR(m.mean, 0.9, 1e-15);
+  EXPECT_NEAR(m.sd, 0.1, 1e-15);
+  ASSERT_TRUE(m.has_interval);
+  EXPECT_NEAR(m.hi - m.mean, 0.2484137712, 1e-9);
+  EXPECT_NEAR(m.mean - m.lo, 0.2484137712, 1e-9);
+  // One seed: no interval.
+  client::MeanInterval one = client::MeanWithInterval({0.75});
+  EXPECT_EQ(one.n, 1);
+  EXPECT_FALSE(one.has_interval);
+  EXPECT_EQ(one.mean, 0.75);
+}
+
+TEST(ClientSha256, MatchesFipsExamplesAndCoreutils) {
+  // FIPS 180-2, Appendix B (one-block, two-block and long messages); digests from memory,
+  // which the coreutils comparison below cross-checks.
+  EXPECT_EQ(client::Sha256Hex("abc"), "ba7816bf8f01cfea414140de5dae2223b00361a396177a9cb410ff61f20015ad");
+  EXPECT_EQ(client::Sha256Hex("abcdbcdecdefdefgefghfghighijhijkijkljklmklmnlmnomnopnopq"),
+            "248d6a61d20638b8e5c026930c3e6039a33ce45964ff2167f6ecedd419db06c1");
+  EXPECT_EQ(client::Sha256Hex(std::string(1000000, 'a')),
+            "cdc76e5c9914fb9281a1c7e284d73e67f1809a48a497200e046d39ccc7112cd0");
+  EXPECT_EQ(client::Sha256Hex(""), "e3b0c44298fc1c149afbf4c8996fb92427ae41e4649b934ca495991b7852b855");
+  // Every length around the block and padding boundaries, fed in uneven pieces, against sha256sum.
+  ScopedTempDir dir;
+  std::string data;
+  for (int i = 0; i < 300; ++i) data.push_back(static_cast<char>((i * 131 + 7) & 0xff));
+  for (size_t len : {1u, 55u, 56u, 63u, 64u, 65u, 119u, 120u, 128u, 300u}) {
+    const std::string bytes = data.substr(0, len);
+    WriteFile(dir.path() + "/b", bytes);
+    auto sum = RunCommand("sha256sum " + dir.path() + "/b");
+    ASSERT_EQ(sum.exit_code, 0);
+    client::Sha256 s;
+    for (size_t i = 0; i < bytes.size(); i += 7) s.Update(bytes.substr(i, 7));
+    EXPECT_EQ(s.HexDigest(), sum.output.substr(0, 64)) << len;
+  }
+}
+
+TEST(ClientSettings, FlagsThenEnvironmentThenConfigFile) {
+  ScopedTempDir dir;
+  const std::string cfg = dir.path() + "/client.yaml";
+  WriteFile(dir.path() + "/tok", "file-token\n");
+  WriteFile(cfg, "server: 10.0.0.5:7070\ntoken_file: tok\n");
+  std::map<std::string, std::string> env = {{"GRAFT_CONFIG", cfg}};
+  auto getenv = [&](const char* n) -> const char* {
+    auto it = env.find(n);
+    return it == env.end() ? nullptr : it->second.c_str();
+  };
+  client::SettingsSources src;
+  src.getenv = getenv;
+  auto s = client::ResolveSettings(src);
+  ASSERT_TRUE(s.ok()) << s.status();
+  EXPECT_EQ(s->server, "10.0.0.5:7070");
+  EXPECT_EQ(s->token, "file-token");  // token_file relative to the config file, trimmed
+  EXPECT_EQ(s->server_from, cfg + ":1:9");
+  env["GRAFT_SERVER"] = "127.0.0.1:9000";
+  env["GRAFT_TOKEN"] = "env-token";
+  s = client::ResolveSettings(src);
+  ASSERT_TRUE(s.ok());
+  EXPECT_EQ(s->server, "127.0.0.1:9000");
+  EXPECT_EQ(s->token, "env-token");
+  src.flag_server = "127.0.0.1:9100";
+  src.flag_token = "flag-token";
+  s = client::ResolveSettings(src);
+  ASSERT_TRUE(s.ok());
+  EXPECT_EQ(s->server, "127.0.0.1:9100");
+  EXPECT_EQ(s->token, "flag-token");
+  EXPECT_EQ(s->token_from, "--token");
+  // A mistake in the file names file:line:column and the key.
+  src = client::SettingsSources();
+  src.getenv = getenv;
+  env.erase("GRAFT_SERVER");
+  WriteFile(cfg, "server: 10.0.0.5:7070\ntokn: abc\n");
+  s = client::ResolveSettings(src);
+  ASSERT_FALSE(s.ok());
+  EXPECT_EQ(s.status().message(), cfg + ":2:1: unknown key 'tokn' in the client config; did you mean 'token'?");
+  WriteFile(cfg, "token: abc\ntoken_file: tok\n");
+  env.erase("GRAFT_TOKEN");
+  s = client::ResolveSettings(src);
+  ASSERT_FALSE(s.ok());
+  EXPECT_EQ(s.status().message(), cfg + ":2:13: token_file: give either token or token_file, not both");
+  // GRAFT_CONFIG naming a missing file is an error; no file at the default path is not.
+  env["GRAFT_CONFIG"] = dir.path() + "/missing.yaml";
+  EXPECT_TRUE(absl::IsNotFound(client::ResolveSettings(src).status()));
+  env.erase("GRAFT_CONFIG");
+  env["HOME"] = dir.path();
+  s = client::ResolveSettings(src);
+  ASSERT_TRUE(s.ok());
+  EXPECT_EQ(s->server, client::kDefaultServer);
+  EXPECT_EQ(s->token, "");
+}
+
+v1::JobEvent PointEvent(int64_t step, int attempt, double acc) {
+  v1::JobEvent e;
+  e.mutable_point()->set_step(step);
+  e.mutable_point()->set_attempt(attempt);
+  e.mutable_point()->set_metrics_json(
+      json{{"step", step}, {"acc_test", {{"value", acc}, {"lo", acc - 0.1}, {"hi", acc}, {"correct", 1}, {"n", 1}}}}
+          .dump());
+  return e;
+}
+
+TEST(ClientRender, RewindDropsThePointsFromItsStep) {
+  client::JobView view;
+  v1::JobEvent state;
+  state.mutable_state_change()->set_id("j-1");
+  state.mutable_state_change()->set_total_steps(60);
+  state.mutable_state_change()->set_state(v1::JOB_STATE_RUNNING);
+  view.Apply(state);
+  for (int s : {0, 20, 40}) view.Apply(PointEvent(s, 1, 0.5));
+  v1::JobEvent rewind;
+  rewind.mutable_rewind()->set_from_step(21);
+  rewind.mutable_rewind()->set_attempt(2);
+  view.Apply(rewind);
+  ASSERT_EQ(view.points().size(), 2u);  // 0 and 20 stay
+  EXPECT_EQ(client::RenderJobLine(view, rewind), "j-1 rewind: attempt 2 replaces the points from step 21");
+  view.Apply(PointEvent(40, 2, 0.9));
+  view.Apply(PointEvent(60, 2, 1.0));
+  std::vector<int64_t> steps;
+  for (const auto& [s, p] : view.points()) steps.push_back(s);
+  EXPECT_EQ(steps, (std::vector<int64_t>{0, 20, 40, 60}));
+  EXPECT_EQ(view.points().at(40).attempt, 2);
+  EXPECT_EQ(client::AccuracyValue(view.points().at(40).metrics, "acc_test"), 0.9);
+  const std::string frame = client::RenderJobFrame(view, 80, 0);
+  EXPECT_NE(frame.find("task accuracy (acc_test)  1.000 [0.900, 1.000]"), std::string::npos) << frame;
+  // The top row (y = 1.00) holds the last point, at the right end of the x axis.
+  std::istringstream in(frame);
+  std::string line;
+  while (std::getline(in, line) && line.rfind("1.00 |", 0) != 0) {
+  }
+  EXPECT_EQ(line.back(), '#') << frame;
+}
+
+TEST(ClientRender, BarsSparklinesDurationsAndIds) {
+  EXPECT_EQ(client::ProgressBar(5, 10, 10), "[#####-----]");
+  EXPECT_EQ(client::ProgressBar(10, 10, 4), "[####]");
+  EXPECT_EQ(client::ProgressBar(0, 0, 3), "[---]");
+  EXPECT_EQ(client::Sparkline({0.0, 0.5, 1.0}, 10), "\u2581\u2585\u2588");
+  EXPECT_EQ(client::Sparkline({0.0, 0.5, 1.0}, 2), "\u2585\u2588");
+  EXPECT_EQ(client::FormatDuration(850), "850ms");
+  EXPECT_EQ(client::FormatDuration(65000), "1m05s");
+  EXPECT_EQ(client::FormatDuration(7380000), "2h03m");
+  EXPECT_EQ(client::SettingOf("parcel-routing/interchange=0,layer=1/seed=2"), "parcel-routing/interchange=0,layer=1");
+  EXPECT_EQ(client::SettingOf("parcel-routing"), "parcel-routing");
+  std::ostringstream err;
+  client::Target t;
+  EXPECT_FALSE(client::ParseTarget("42", true, &t, err));
+  EXPECT_NE(err.str().find("did you mean 'j-42'?"), std::string::npos) << err.str();
+  err.str("");
+  EXPECT_FALSE(client::ParseTarget("S-3", true, &t, err));
+  EXPECT_NE(err.str().find("did you mean 's-3'?"), std::string::npos) << err.str();
+  EXPECT_FALSE(client::ParseTarget("s-3", false, &t, err));
+  ASSERT_TRUE(client::ParseTarget("s-3", true, &t, err));
+  EXPECT_TRUE(t.is_sweep);
+}
+
+// A fake coordinator for a download that arrives damaged.
+class DamagedDownloadApi : public client::Api {
+ public:
+  grpc::Status Submit(const v1::SubmitJobRequest&, v1::SubmitJobResponse*) override { return Unused(); }
+  grpc::Status GetJob(const std::string& id, v1::Job* job) override {
+    job->set_id(id);
+    job->set_state(v1::JOB_STATE_SUCCEEDED);
+    return grpc::Status::OK;
+  }
+  grpc::Status ListJobs(const v1::ListJobsRequest&, v1::ListJobsResponse*) override { return Unused(); }
+  grpc::Status CancelJob(const std::string&, const std::string&, v1::Job*) override { return Unused(); }
+  grpc::Status CancelSweep(const std::string&, const std::string&, v1::CancelSweepResponse*) override { return Unused(); }
+  grpc::Status GetMetrics(const std::string&, std::vector<v1::MetricPoint>*) override { return Unused(); }
+  grpc::Status WatchJob(const std::string&, int64_t, int64_t, const std::function<bool(const v1::JobEvent&)>&) override {
+    return Unused();
+  }
+  grpc::Status WatchSweep(const std::string&, int64_t, int64_t,
+                          const std::function<bool(const v1::SweepEvent&)>&) override {
+    return Unused();
+  }
+  grpc::Status Download(const std::string&, const std::string& name,
+                        const std::function<bool(const v1::ArtifactChunk&)>& on_chunk) override {
+    if (name != "weights.pt") return grpc::Status(grpc::StatusCode::NOT_FOUND, "no " + name);
+    v1::ArtifactChunk c;
+    c.set_total_bytes(5);
+    c.set_sha256(client::Sha256Hex("hello"));
+    c.set_data("hellO");  // one byte flipped on the way
+    on_chunk(c);
+    return grpc::Status::OK;
+  }
+
+ private:
+  static grpc::Status Unused() { return grpc::Status(grpc::StatusCode::UNIMPLEMENTED, "not used"); }
+};
+
+TEST(ClientFetch, ADamagedDownloadIsRefusedAndNothingIsKept) {
+  DamagedDownloadApi api;
+  ScopedTempDir dir;
+  client::FetchArgs fa;
+  fa.id = "j-1";
+  fa.out_dir = dir.path() + "/out";
+  Ran r = Call([&](client::Io& io) { return client::FetchCommand(api, fa, io); });
+  EXPECT_EQ(r.code, client::kExitFailure);
+  EXPECT_NE(r.err.find("weights.pt of j-1 arrived damaged"), std::string::npos) << r.err;
+  EXPECT_FALSE(std::ifstream(fa.out_dir + "/weights.pt").good());
+  EXPECT_FALSE(std::ifstream(fa.out_dir + "/weights.pt.part").good());
+}
+
+}  // namespace
+}  // namespace graft
