@@ -19,7 +19,7 @@
 namespace graft::client {
 namespace {
 
-using json = nlohmann::json;
+using json = nlohmann::ordered_json;
 namespace fs = std::filesystem;
 
 const std::vector<std::string> kArtifacts = {"weights.pt", "metrics.jsonl", "result.json", "spec.yaml",
@@ -139,6 +139,9 @@ int WatchOrWait(Api& api, const WatchArgs& args, Io& io, bool draw) {
   if (!target.is_sweep) {
     JobView view;
     s = api.WatchJob(target.id, args.from_step, args.timeout_ms, [&](const v1::JobEvent& e) {
+      // graftd replays stored points from from_step but forwards every new point; a watch that
+      // starts ahead of the job shows only the points it asked for.
+      if (e.has_point() && e.point().step() < args.from_step) return true;
       view.Apply(e);
       if (!draw) return true;
       if (args.json) {
@@ -186,6 +189,7 @@ int WatchOrWait(Api& api, const WatchArgs& args, Io& io, bool draw) {
   }
   SweepView view;
   s = api.WatchSweep(target.id, args.from_step, args.timeout_ms, [&](const v1::SweepEvent& e) {
+    if (e.event().has_point() && e.event().point().step() < args.from_step) return true;
     view.Apply(e);
     if (!draw) return true;
     if (args.json) {

@@ -123,7 +123,7 @@ std::string SettingOf(const std::string& job_name);
 
 // Flattens a metrics object into dotted columns ("acc_test.value", "iia_by_set.local.lo", ...),
 // scalars as JSON text (strings unquoted, null empty), in the object's key order.
-void FlattenMetrics(const std::string& prefix, const nlohmann::json& value,
+void FlattenMetrics(const std::string& prefix, const nlohmann::ordered_json& value,
                     std::vector<std::pair<std::string, std::string>>* out);
 
 // The command names, for "did you mean ...?" in the main.

@@ -8,7 +8,7 @@
 namespace graft::client {
 namespace {
 
-using json = nlohmann::json;
+using json = nlohmann::ordered_json;
 
 // Display width of UTF-8 text: code points, ignoring continuation bytes.
 int Width(const std::string& s) {

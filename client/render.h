@@ -35,21 +35,21 @@ std::string Elapsed(const v1::Job& job, int64_t now_ms);
 std::string RenderTable(const std::vector<std::string>& header, const std::vector<std::vector<std::string>>& rows);
 
 // metrics[key]["value"] when it is a number.
-std::optional<double> AccuracyValue(const nlohmann::json& metrics, const std::string& key);
+std::optional<double> AccuracyValue(const nlohmann::ordered_json& metrics, const std::string& key);
 // "0.983 [0.912, 1.000]" for an accuracy object, "-" when absent.
-std::string AccuracyText(const nlohmann::json& metrics, const std::string& key);
+std::string AccuracyText(const nlohmann::ordered_json& metrics, const std::string& key);
 
 // A job as JSON with snake_case keys, the state as its name, `latest` with `metrics` parsed,
 // and (with_texts) `spec_yaml` and `result` (parsed result.json) when present.
-nlohmann::json JobToJson(const v1::Job& job, bool with_texts);
+nlohmann::ordered_json JobToJson(const v1::Job& job, bool with_texts);
 // A point: {"step", "attempt", "metrics": {...}}.
-nlohmann::json PointToJson(const v1::MetricPoint& point);
+nlohmann::ordered_json PointToJson(const v1::MetricPoint& point);
 // One line of `watch --json`: {"type": "state"|"point"|"rewind", "job_id", ...}.
-nlohmann::json EventToJson(const std::string& job_id, const v1::JobEvent& event);
+nlohmann::ordered_json EventToJson(const std::string& job_id, const v1::JobEvent& event);
 
 struct StoredPoint {
   int32_t attempt = 0;
-  nlohmann::json metrics;
+  nlohmann::ordered_json metrics;
 };
 
 // What a watcher knows about one job: the job as last reported and its points by step.

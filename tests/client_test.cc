@@ -282,7 +282,7 @@ TEST(ClientWatch, FromStepZeroAndFromAMiddleStepSeesEveryPointOnce) {
   Cluster c;
   auto worker = c.StartWorker("w1");
   const std::string id = c.Submit(kAlice, "parcel-routing",
-                                  Plus(kTiny, {"training.steps=600", "evaluation.every=30", "training.checkpoint_every=300"}));
+                                  Plus(kTiny, {"training.steps=3000", "evaluation.every=150", "training.checkpoint_every=1500"}));
   ASSERT_FALSE(id.empty());
   // Watcher A from step 0, started while the job is queued or just running.
   Ran a;
@@ -294,35 +294,62 @@ TEST(ClientWatch, FromStepZeroAndFromAMiddleStepSeesEveryPointOnce) {
     w.timeout_ms = 120000;
     a = Call([&](client::Io& io) { return client::WatchCommand(*api, w, io); });
   });
-  // Watcher B from step 300, started once the job has passed step 150 (or ended).
-  ASSERT_TRUE(WaitFor([&] { return c.Get(id).step() >= 150 || client::IsFinal(c.Get(id).state()); }, 60000));
+  // Watcher B from step 1500, started once the job has passed step 750 (or ended): ahead of the
+  // job, it must still show only the points from step 1500.
+  ASSERT_TRUE(WaitFor([&] { return c.Get(id).step() >= 750 || client::IsFinal(c.Get(id).state()); }, 60000));
   Ran b;
   std::thread tb([&] {
     auto api = ApiFor(c);
     client::WatchArgs w;
     w.id = id;
-    w.from_step = 300;
+    w.from_step = 1500;
     w.json = true;
     w.timeout_ms = 120000;
     b = Call([&](client::Io& io) { return client::WatchCommand(*api, w, io); });
   });
+  // Watcher C: a watch interrupted after its first points, resumed from the step after the last
+  // one it saw; together the two parts must hold every point once.
+  std::vector<int64_t> first_part;
+  {
+    auto api = ApiFor(c);
+    grpc::Status st = api->WatchJob(id, 0, 60000, [&](const v1::JobEvent& e) {
+      if (e.has_point()) first_part.push_back(e.point().step());
+      return first_part.size() < 4;
+    });
+    ASSERT_TRUE(st.ok()) << st.error_message();
+  }
+  ASSERT_EQ(first_part.size(), 4u);
+  Ran resumed;
+  {
+    auto api = ApiFor(c);
+    client::WatchArgs w;
+    w.id = id;
+    w.from_step = first_part.back() + 1;
+    w.json = true;
+    w.timeout_ms = 120000;
+    resumed = Call([&](client::Io& io) { return client::WatchCommand(*api, w, io); });
+  }
   ta.join();
   tb.join();
   ASSERT_EQ(a.code, 0) << a.err << c.Log() << ReadFile(worker->log_path());
   ASSERT_EQ(b.code, 0) << b.err;
+  ASSERT_EQ(resumed.code, 0) << resumed.err;
   const std::vector<v1::MetricPoint> stored = c.Metrics(id);
-  ASSERT_EQ(stored.size(), 21u);  // 0, 30, ..., 600
-  std::vector<int64_t> all, from_300;
+  ASSERT_EQ(stored.size(), 21u);  // 0, 150, ..., 3000
+  std::vector<int64_t> all, from_1500;
   for (const auto& p : stored) {
     all.push_back(p.step());
-    if (p.step() >= 300) from_300.push_back(p.step());
+    if (p.step() >= 1500) from_1500.push_back(p.step());
   }
   Watched wa = ParseWatchJson(a.out), wb = ParseWatchJson(b.out);
   EXPECT_EQ(wa.steps, all);  // each once, in order
-  EXPECT_EQ(wb.steps, from_300);
+  EXPECT_EQ(wb.steps, from_1500);
+  std::vector<int64_t> joined = first_part;
+  for (int64_t st : ParseWatchJson(resumed.out).steps) joined.push_back(st);
+  EXPECT_EQ(joined, all);
   for (const auto& p : stored) {
     EXPECT_EQ(wa.metrics[p.step()], json::parse(p.metrics_json())) << p.step();
-    if (p.step() >= 300) {
+    if (p.step() >= 1500) {
       EXPECT_EQ(wb.metrics[p.step()], json::parse(p.metrics_json())) << p.step();
     }
   }
@@ -344,7 +371,7 @@ TEST(ClientWatch, FromStepZeroAndFromAMiddleStepSeesEveryPointOnce) {
   Ran tty = Call([&](client::Io& io) { return client::WatchCommand(*api, w, io); }, true);
   EXPECT_EQ(tty.code, 0);
   EXPECT_NE(tty.out.find("\x1b[J"), std::string::npos);
-  for (const char* s : {"accuracy", "1.00 |", "0.50 |", "0.00 |", "steps", "600", "task accuracy (acc_test)",
+  for (const char* s : {"accuracy", "1.00 |", "0.50 |", "0.00 |", "steps", "3000", "task accuracy (acc_test)",
                         "IIA, set local (iia_by_set)", "IIA, set local+careful (iia_by_set)"}) {
     EXPECT_NE(tty.out.find(s), std::string::npos) << s << "\n" << tty.out;
   }
@@ -465,8 +492,9 @@ TEST(ClientCompare, MatchesAHandComputationAndMetricsParseBack) {
   sa.json = true;
   Ran sub = Call([&](client::Io& io) { return client::SubmitCommand(*api, sa, io); });
   ASSERT_EQ(sub.code, 0) << sub.err;
-  const std::string sweep = json::parse(sub.out)["sweep_id"];
-  ASSERT_EQ(json::parse(sub.out)["job_ids"].size(), 6u);
+  const json submitted = json::parse(sub.out);
+  const std::string sweep = submitted["sweep_id"];
+  ASSERT_EQ(submitted["job_ids"].size(), 6u);
   client::WatchArgs wa;
   wa.id = sweep;
   wa.timeout_ms = 150000;
@@ -476,7 +504,7 @@ TEST(ClientCompare, MatchesAHandComputationAndMetricsParseBack) {
   // By hand: group the stored results by name without "/seed=N".
   std::map<std::string, std::vector<double>> acc, iia;
   std::map<std::string, int> seeds;
-  for (const auto& id : json::parse(sub.out)["job_ids"]) {
+  for (const auto& id : submitted["job_ids"]) {
     v1::Job job = c.Get(id);
     ASSERT_EQ(job.state(), v1::JOB_STATE_SUCCEEDED);
     const std::string name = job.name();
@@ -498,6 +526,7 @@ TEST(ClientCompare, MatchesAHandComputationAndMetricsParseBack) {
   ASSERT_EQ(cmp.code, 0) << cmp.err;
   json out = json::parse(cmp.out);
   ASSERT_EQ(out["settings"].size(), 2u);
+  bool some_spread = false;  // the interval check is not vacuous: some seeds disagree
   for (const auto& s : out["settings"]) {
     const std::string setting = s["setting"];
     EXPECT_EQ(s["seeds"], 3);
@@ -508,12 +537,14 @@ TEST(ClientCompare, MatchesAHandComputationAndMetricsParseBack) {
       for (double v : values) ss += (v - mean) * (v - mean);
       const double sd = std::sqrt(ss / 2);
       const double half = t.at(2) * sd / std::sqrt(3.0);
+      some_spread = some_spread || sd > 1e-6;
       EXPECT_NEAR(s[key]["mean"].get<double>(), mean, 1e-12) << setting << " " << key;
       EXPECT_NEAR(s[key]["sd"].get<double>(), sd, 1e-12) << setting << " " << key;
       EXPECT_NEAR(s[key]["lo"].get<double>(), mean - half, 1e-9) << setting << " " << key;
       EXPECT_NEAR(s[key]["hi"].get<double>(), mean + half, 1e-9) << setting << " " << key;
     }
   }
+  EXPECT_TRUE(some_spread) << cmp.out;
   ca.format = "table";
   Ran table = Call([&](client::Io& io) { return client::CompareCommand(*api, ca, io); });
   ASSERT_EQ(table.code, 0);
