@@ -269,17 +269,26 @@ std::string RenderJobFrame(const JobView& view, int width, int64_t now_ms) {
   };
   auto row_of = [&](double v) { return static_cast<int>(std::lround((1.0 - std::clamp(v, 0.0, 1.0)) * (kRows - 1))); };
   std::vector<std::string> grid(kRows, std::string(plot_width, ' '));
-  // Sets first, task accuracy last (drawn on top).
-  for (int s = static_cast<int>(series.size()) - 1; s >= 0; --s) {
-    const auto& pts = series[s].points;
+  bool shared = false;
+  auto mark = [&](int row, int col, char glyph) {
+    char& cell = grid[row][col];
+    if (cell != ' ' && cell != glyph) {
+      cell = '*';  // two or more curves pass through this cell
+      shared = true;
+    } else {
+      cell = glyph;
+    }
+  };
+  for (const Series& s : series) {
+    const auto& pts = s.points;
     for (size_t i = 0; i < pts.size(); ++i) {
       const int c0 = col_of(pts[i].first);
-      grid[row_of(pts[i].second)][c0] = series[s].glyph;
+      mark(row_of(pts[i].second), c0, s.glyph);
       if (i + 1 < pts.size()) {
         const int c1 = col_of(pts[i + 1].first);
         for (int c = c0 + 1; c < c1; ++c) {
           const double f = static_cast<double>(c - c0) / (c1 - c0);
-          grid[row_of(pts[i].second + f * (pts[i + 1].second - pts[i].second))][c] = series[s].glyph;
+          mark(row_of(pts[i].second + f * (pts[i + 1].second - pts[i].second)), c, s.glyph);
         }
       }
     }
@@ -309,6 +318,7 @@ std::string RenderJobFrame(const JobView& view, int width, int64_t now_ms) {
   int label_width = 0;
   for (const auto& s : series) label_width = std::max(label_width, Width(s.label));
   for (const auto& s : series) o << "  " << s.glyph << " " << Pad(s.label, label_width) << "  " << s.latest << "\n";
+  if (shared) o << "  * several curves in one cell\n";
   if (!view.points().empty()) {
     const auto& last = view.points().rbegin()->second.metrics;
     o << "  at step " << view.points().rbegin()->first << ": iia_test " << AccuracyText(last, "iia_test")
