@@ -221,10 +221,12 @@ int WatchOrWait(Api& api, const WatchArgs& args, Io& io, bool draw) {
     io.err << "graft: the watch of " << target.id << " ended before its jobs did (graftd stopped?)\n";
     return kExitFailure;
   }
-  if (args.json && !draw) {
-    json j{{"sweep_id", target.id}, {"jobs", view.order().size()}, {"counts", json::object()}};
-    for (const auto& [k, v] : counts) j["counts"][k] = v;
-    io.out << j.dump() << "\n";
+  if (args.json) {
+    if (!draw) {  // wait --json: one summary object (watch --json printed the events)
+      json j{{"sweep_id", target.id}, {"jobs", view.order().size()}, {"counts", json::object()}};
+      for (const auto& [k, v] : counts) j["counts"][k] = v;
+      io.out << j.dump() << "\n";
+    }
   } else if (!live) {
     io.out << target.id << ": " << view.order().size() << " jobs: " << StateCounts(counts) << "\n";
   }
@@ -245,9 +247,10 @@ std::string CsvCell(const std::string& s) {
   return out + "\"";
 }
 
+// Three decimals, rounded.
 std::string Number(double v) {
   char buf[32];
-  std::snprintf(buf, sizeof(buf), "%.6f", v);
+  std::snprintf(buf, sizeof(buf), "%.3f", v);
   return buf;
 }
 
@@ -422,7 +425,7 @@ int ListCommand(Api& api, const ListArgs& args, Io& io) {
     std::string iia = "-";
     if (job.has_latest()) {
       json m = json::parse(job.latest().metrics_json(), nullptr, false);
-      if (auto v = AccuracyValue(m, "iia_test")) iia = Number(*v).substr(0, 5);
+      if (auto v = AccuracyValue(m, "iia_test")) iia = Number(*v);
     }
     rows.push_back({job.id(), job.name(), StateName(job.state()), ProgressBar(job.step(), job.total_steps(), 10),
                     std::to_string(job.step()) + "/" + std::to_string(job.total_steps()), iia, Elapsed(job, now)});
@@ -484,7 +487,7 @@ int ShowCommand(Api& api, const ShowArgs& args, Io& io) {
       }
     }
     if (m.contains("unchanged_fraction") && m["unchanged_fraction"].is_number()) {
-      acc.push_back({"unchanged fraction", Number(m["unchanged_fraction"].get<double>()).substr(0, 5)});
+      acc.push_back({"unchanged fraction", Number(m["unchanged_fraction"].get<double>())});
     }
     size_t w = 0;
     for (const auto& [k, v] : acc) w = std::max(w, k.size());
@@ -719,9 +722,8 @@ int CompareCommand(Api& api, const CompareArgs& args, Io& io) {
   };
   auto stat_text = [](const MeanInterval& m) -> std::string {
     if (m.n == 0) return "-";
-    if (!m.has_interval) return Number(m.mean).substr(0, 5) + " (1 seed: no interval)";
-    return Number(m.mean).substr(0, 5) + " [" + Number(m.lo).substr(0, m.lo < 0 ? 6 : 5) + ", " +
-           Number(m.hi).substr(0, 5) + "]";
+    if (!m.has_interval) return Number(m.mean) + " (1 seed: no interval)";
+    return Number(m.mean) + " [" + Number(m.lo) + ", " + Number(m.hi) + "]";
   };
   if (args.format == "json") {
     json out{{"sweep_id", t.id}, {"level", 0.95}, {"interval", "mean +- t(0.975, n-1) * sd / sqrt(n) over seeds"},

@@ -551,6 +551,32 @@ TEST(ClientCompare, MatchesAHandComputationAndMetricsParseBack) {
   EXPECT_NE(table.out.find("parcel-routing/interchange=0"), std::string::npos) << table.out;
   EXPECT_NE(table.out.find("SEEDS"), std::string::npos) << table.out;
 
+  // watch SWEEP on the finished sweep: every job's points once, each job's final state, and on a
+  // terminal the footer with the counts by state.
+  client::WatchArgs sw;
+  sw.id = sweep;
+  sw.json = true;
+  Ran swatch = Call([&](client::Io& io) { return client::WatchCommand(*api, sw, io); });
+  ASSERT_EQ(swatch.code, 0) << swatch.err;
+  std::map<std::string, std::vector<int64_t>> steps_by_job;
+  std::map<std::string, std::string> final_state;
+  for (const auto& line : Lines(swatch.out)) {
+    json e = json::parse(line);
+    if (e["type"] == "point") steps_by_job[e["job_id"]].push_back(e["step"]);
+    if (e["type"] == "state") final_state[e["job_id"]] = e["job"]["state"];
+  }
+  ASSERT_EQ(steps_by_job.size(), 6u) << swatch.out;
+  for (const auto& [job_id, steps] : steps_by_job) {
+    EXPECT_EQ(steps, (std::vector<int64_t>{0, 20, 40})) << job_id;
+    EXPECT_EQ(final_state[job_id], "succeeded") << job_id;
+  }
+  sw.json = false;
+  Ran stty = Call([&](client::Io& io) { return client::WatchCommand(*api, sw, io); }, true);
+  EXPECT_EQ(stty.code, 0);
+  EXPECT_NE(stty.out.find("6 jobs: 0 queued, 0 running, 6 succeeded, 0 failed, 0 cancelled"), std::string::npos)
+      << stty.out;
+  EXPECT_NE(stty.out.find("[##########]  40/40"), std::string::npos) << stty.out;
+
   // metrics: CSV and JSONL parse back to the stored points.
   const std::string id = json::parse(sub.out)["job_ids"][0];
   const std::vector<v1::MetricPoint> stored = c.Metrics(id);
@@ -850,15 +876,11 @@ TEST(ClientRender, BarsSparklinesDurationsAndIds) {
   EXPECT_TRUE(t.is_sweep);
 }
 
-// A fake coordinator for a download that arrives damaged.
-class DamagedDownloadApi : public client::Api {
+// A fake coordinator: every call unimplemented unless a test overrides it.
+class FakeApi : public client::Api {
  public:
   grpc::Status Submit(const v1::SubmitJobRequest&, v1::SubmitJobResponse*) override { return Unused(); }
-  grpc::Status GetJob(const std::string& id, v1::Job* job) override {
-    job->set_id(id);
-    job->set_state(v1::JOB_STATE_SUCCEEDED);
-    return grpc::Status::OK;
-  }
+  grpc::Status GetJob(const std::string&, v1::Job*) override { return Unused(); }
   grpc::Status ListJobs(const v1::ListJobsRequest&, v1::ListJobsResponse*) override { return Unused(); }
   grpc::Status CancelJob(const std::string&, const std::string&, v1::Job*) override { return Unused(); }
   grpc::Status CancelSweep(const std::string&, const std::string&, v1::CancelSweepResponse*) override { return Unused(); }
@@ -870,6 +892,23 @@ class DamagedDownloadApi : public client::Api {
                           const std::function<bool(const v1::SweepEvent&)>&) override {
     return Unused();
   }
+  grpc::Status Download(const std::string&, const std::string&,
+                        const std::function<bool(const v1::ArtifactChunk&)>&) override {
+    return Unused();
+  }
+
+ private:
+  static grpc::Status Unused() { return grpc::Status(grpc::StatusCode::UNIMPLEMENTED, "not used"); }
+};
+
+// A download that arrives damaged.
+class DamagedDownloadApi : public FakeApi {
+ public:
+  grpc::Status GetJob(const std::string& id, v1::Job* job) override {
+    job->set_id(id);
+    job->set_state(v1::JOB_STATE_SUCCEEDED);
+    return grpc::Status::OK;
+  }
   grpc::Status Download(const std::string&, const std::string& name,
                         const std::function<bool(const v1::ArtifactChunk&)>& on_chunk) override {
     if (name != "weights.pt") return grpc::Status(grpc::StatusCode::NOT_FOUND, "no " + name);
@@ -880,10 +919,91 @@ class DamagedDownloadApi : public client::Api {
     on_chunk(c);
     return grpc::Status::OK;
   }
+};
+
+// A sweep of four jobs with final values chosen by hand, served over two pages.
+class HandSweepApi : public FakeApi {
+ public:
+  HandSweepApi() {
+    Add("j-1", "routing/width=8/seed=1", v1::JOB_STATE_SUCCEEDED, 0.9, 0.5);
+    Add("j-2", "routing/width=8/seed=2", v1::JOB_STATE_SUCCEEDED, 0.8, 0.7);
+    Add("j-3", "routing/width=8/seed=3", v1::JOB_STATE_SUCCEEDED, 1.0, 0.6);
+    Add("j-4", "routing/width=16/seed=1", v1::JOB_STATE_SUCCEEDED, 0.75, 0.25);
+    Add("j-5", "routing/width=16/seed=2", v1::JOB_STATE_FAILED, 0, 0);
+  }
+  grpc::Status ListJobs(const v1::ListJobsRequest& req, v1::ListJobsResponse* resp) override {
+    ++list_calls;
+    // Newest first, two per page.
+    const size_t start = req.page_token().empty() ? 0 : std::stoul(req.page_token());
+    for (size_t i = start; i < start + 2 && i < jobs_.size(); ++i) *resp->add_jobs() = jobs_[jobs_.size() - 1 - i];
+    if (start + 2 < jobs_.size()) resp->set_next_page_token(std::to_string(start + 2));
+    return grpc::Status::OK;
+  }
+  grpc::Status GetJob(const std::string& id, v1::Job* job) override {
+    for (const auto& j : jobs_) {
+      if (j.id() == id) *job = j;
+    }
+    return grpc::Status::OK;
+  }
+  int list_calls = 0;
 
  private:
-  static grpc::Status Unused() { return grpc::Status(grpc::StatusCode::UNIMPLEMENTED, "not used"); }
+  void Add(const std::string& id, const std::string& name, v1::JobState state, double acc, double iia) {
+    v1::Job j;
+    j.set_id(id);
+    j.set_name(name);
+    j.set_state(state);
+    j.set_sweep_id("s-1");
+    if (state == v1::JOB_STATE_SUCCEEDED) {
+      j.set_result_json(json{{"acc_test", {{"value", acc}}}, {"iia_changed_test", {{"value", iia}}}}.dump());
+    }
+    jobs_.push_back(j);
+  }
+  std::vector<v1::Job> jobs_;
 };
+
+TEST(ClientCompare, HandComputedSettingsWithOneSeedAndALeftOutJob) {
+  HandSweepApi api;
+  client::CompareArgs ca;
+  ca.id = "s-1";
+  ca.format = "json";
+  Ran r = Call([&](client::Io& io) { return client::CompareCommand(api, ca, io); });
+  ASSERT_EQ(r.code, 0) << r.err;
+  EXPECT_EQ(api.list_calls, 3);  // every page
+  json out = json::parse(r.out);
+  ASSERT_EQ(out["settings"].size(), 2u);
+  // width=8: acc 0.9, 0.8, 1.0 -> mean 0.9, sd 0.1, half-width 0.2484137712 (as in
+  // ClientStats.MeanIntervalByHand); iia 0.5, 0.7, 0.6 -> mean 0.6, sd 0.1, the same half-width.
+  const json& a = out["settings"][0];
+  EXPECT_EQ(a["setting"], "routing/width=8");
+  EXPECT_EQ(a["seeds"], 3);
+  EXPECT_EQ(a["job_ids"], json({"j-1", "j-2", "j-3"}));
+  EXPECT_NEAR(a["acc_test"]["mean"].get<double>(), 0.9, 1e-12);
+  EXPECT_NEAR(a["acc_test"]["lo"].get<double>(), 0.9 - 0.2484137712, 1e-9);
+  EXPECT_NEAR(a["acc_test"]["hi"].get<double>(), 0.9 + 0.2484137712, 1e-9);
+  EXPECT_NEAR(a["iia_changed_test"]["mean"].get<double>(), 0.6, 1e-12);
+  EXPECT_NEAR(a["iia_changed_test"]["sd"].get<double>(), 0.1, 1e-12);
+  EXPECT_NEAR(a["iia_changed_test"]["hi"].get<double>(), 0.6 + 0.2484137712, 1e-9);
+  // width=16: one succeeded seed, no interval; the failed seed is left out.
+  const json& b = out["settings"][1];
+  EXPECT_EQ(b["setting"], "routing/width=16");
+  EXPECT_EQ(b["seeds"], 1);
+  EXPECT_EQ(b["acc_test"]["mean"], 0.75);
+  EXPECT_TRUE(b["acc_test"]["lo"].is_null());
+  EXPECT_TRUE(b["acc_test"]["sd"].is_null());
+  ASSERT_EQ(out["left_out"].size(), 1u);
+  EXPECT_EQ(out["left_out"][0]["id"], "j-5");
+  EXPECT_EQ(out["left_out"][0]["state"], "failed");
+  ca.format = "table";
+  r = Call([&](client::Io& io) { return client::CompareCommand(api, ca, io); });
+  ASSERT_EQ(r.code, 0);
+  EXPECT_NE(r.out.find("0.900 [0.652, 1.148]"), std::string::npos) << r.out;
+  EXPECT_NE(r.out.find("0.750 (1 seed: no interval)"), std::string::npos) << r.out;
+  EXPECT_NE(r.out.find("left out (not succeeded): j-5 (failed)"), std::string::npos) << r.out;
+  ca.id = "j-1";
+  r = Call([&](client::Io& io) { return client::CompareCommand(api, ca, io); });
+  EXPECT_EQ(r.code, client::kExitUsage);
+}
 
 TEST(ClientFetch, ADamagedDownloadIsRefusedAndNothingIsKept) {
   DamagedDownloadApi api;
