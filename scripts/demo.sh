@@ -1,45 +1,74 @@
 #!/usr/bin/env bash
-# The local demo: installs and builds graft when needed, then trains the parcel-routing job
-# twice on this machine, with IIT and as a standard-training baseline (same seed, interchange
-# weight 0), and prints the two side by side. Works on a fresh Debian machine.
-# Usage: scripts/demo.sh [OUT_DIR]   (default: var/demo)
+# The full demo on one machine: installs and builds graft when needed, starts a coordinator on
+# loopback with a fresh data dir and generated tokens, starts two workers, submits a
+# parcel-routing sweep (interchange weight 0 and 1, two seeds each), watches it to the end,
+# prints `graft compare`, fetches every job's artifacts, and stops every process it started,
+# also when interrupted. Usage: scripts/demo.sh [OUT_DIR]   (default: var/demo)
 set -euo pipefail
 cd "$(dirname "$0")/.."
+root="$(pwd)"
 out="${1:-var/demo}"
 
 bash scripts/setup.sh
-if [[ ! -x build/bin/graft-worker ]]; then
+if [[ ! -x build/bin/graft || ! -x build/bin/graftd || ! -x build/bin/graft-worker ]]; then
   cmake -S . -B build -DCMAKE_BUILD_TYPE=RelWithDebInfo
   cmake --build build -j2
 fi
 
-config=configs/parcel-routing.yaml
-echo "== the job"
-build/bin/graft-worker check "$config"
+rm -rf "$out"
+mkdir -p "$out"
+out="$(cd "$out" && pwd)"
+pids=()
+cleanup() {
+  for pid in "${pids[@]}"; do kill -TERM "$pid" 2>/dev/null || true; done
+  for pid in "${pids[@]}"; do wait "$pid" 2>/dev/null || true; done
+}
+trap cleanup EXIT
+trap 'echo "demo: interrupted; stopping"; exit 130' INT TERM
+
+# Tokens: graftd keeps only their SHA-256.
+user_token="$(head -c 24 /dev/urandom | base64 | tr -d '/+=')"
+worker_token="$(head -c 24 /dev/urandom | base64 | tr -d '/+=')"
+hash() { printf %s "$1" | sha256sum | cut -d' ' -f1; }
+cat > "$out/tokens.yaml" <<EOT
+- {name: demo, role: user, sha256: $(hash "$user_token")}
+- {name: demo-node, role: worker, sha256: $(hash "$worker_token")}
+EOT
+printf %s "$worker_token" > "$out/worker.token"
+printf %s "$user_token" > "$out/user.token"
+chmod 600 "$out"/*.token
+
+echo "== starting graftd (data dir $out/data)"
+build/bin/graftd --config configs/graftd.yaml --listen 127.0.0.1:0 --port-file "$out/port" \
+  --data-dir "$out/data" --tokens "$out/tokens.yaml" > "$out/graftd.log" 2>&1 &
+pids+=($!)
+for _ in $(seq 1 100); do [[ -s "$out/port" ]] && break; sleep 0.1; done
+[[ -s "$out/port" ]] || { echo "demo: graftd did not start; see $out/graftd.log"; exit 1; }
+export GRAFT_SERVER="127.0.0.1:$(cat "$out/port")"
+export GRAFT_TOKEN="$user_token"
+echo "   listening on $GRAFT_SERVER"
+
+echo "== starting two workers"
+for n in 1 2; do
+  build/bin/graft-worker serve --server "$GRAFT_SERVER" --token-file "$out/worker.token" --threads 1 \
+    --work-dir "$out/worker$n" > "$out/worker$n.log" 2>&1 &
+  pids+=($!)
+done
+
+echo "== submitting the sweep (configs/parcel-routing-sweep.yaml)"
+sweep="$(build/bin/graft submit configs/parcel-routing-sweep.yaml --json | /usr/bin/python3 -c 'import json,sys; print(json.load(sys.stdin)["sweep_id"])')"
+echo "   sweep $sweep"
+echo "== watching $sweep"
+build/bin/graft watch "$sweep" || true
 echo
-echo "== training with IIT (loss_weights.interchange = 1)"
-build/bin/graft-worker run "$config" --out "$out/iit"
+build/bin/graft wait "$sweep" --timeout 600
+echo "== graft compare $sweep"
+build/bin/graft compare "$sweep"
 echo
-echo "== standard training, same seed (loss_weights.interchange = 0)"
-build/bin/graft-worker run "$config" --out "$out/baseline" --set training.loss_weights.interchange=0
-echo
-/usr/bin/python3 - "$out/iit/result.json" "$out/baseline/result.json" <<'PY'
-import json, sys
-iit, base = (json.load(open(p)) for p in sys.argv[1:3])
-def cell(a):
-    return f"{a['value']:.3f} [{a['lo']:.3f}, {a['hi']:.3f}] n={a['n']}"
-rows = [("task accuracy, held out", "acc_test"), ("IIA, held out", "iia_test"),
-        ("IIA, changed cases only", "iia_changed_test")]
-print(f"{'':28}{'IIT':34}{'standard training':34}")
-for label, key in rows:
-    print(f"{label:28}{cell(iit[key]):34}{cell(base[key]):34}")
-for name in iit["iia_by_set"]:
-    print(f"{'IIA, set ' + name:28}{cell(iit['iia_by_set'][name]):34}{cell(base['iia_by_set'][name]):34}")
-print(f"{'unchanged floor':28}{iit['unchanged_fraction']:<34.3f}{base['unchanged_fraction']:<34.3f}")
-print(f"{'seconds':28}{iit['seconds']:<34.1f}{base['seconds']:<34.1f}")
-print()
-print("Intervals are 95% Wilson intervals. The unchanged floor is the IIA a network that ignores")
-print("every intervention would get; the changed-case IIA is the figure to compare.")
-PY
-echo
-echo "artifacts: $out/iit and $out/baseline (spec.yaml, metrics.jsonl, result.json, weights.pt, checkpoint.pt)"
+echo "== artifacts"
+for job in $(build/bin/graft list --sweep "$sweep" --json | /usr/bin/python3 -c 'import json,sys; print(" ".join(j["id"] for j in json.load(sys.stdin)))'); do
+  build/bin/graft fetch "$job" --out "$out/artifacts/$job" > /dev/null
+  echo "   $out/artifacts/$job  (weights.pt, metrics.jsonl, result.json, spec.yaml, checkpoint.pt)"
+done
+echo "logs: $out/graftd.log, $out/worker1.log, $out/worker2.log"
+echo "IIA on sampled triples is evidence, not proof, and only on this input distribution (see README, Cautions)."

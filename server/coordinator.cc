@@ -352,6 +352,10 @@ void Coordinator::Publish(const JobRecord& job, const v1::JobEvent& event, bool 
   bool sweep_state_checked = false, sweep_over = false;
   for (auto it = watchers_.begin(); it != watchers_.end();) {
     Watcher& w = it->second;
+    if (event.has_point() && event.point().step() < w.from_step) {
+      ++it;
+      continue;
+    }
     if (w.job_id == job.id) {
       WatchSink sink = w.sink;
       deferred.push_back([sink, event, final_state] {
@@ -431,7 +435,7 @@ absl::StatusOr<int64_t> Coordinator::WatchSweep(const Principal& who, const std:
       }
     }
     id = next_watch_id_++;
-    if (!over) watchers_[id] = Watcher{0, sweep_id, nullptr, sink};
+    if (!over) watchers_[id] = Watcher{0, sweep_id, nullptr, sink, std::max<int64_t>(0, from_step)};
     deferred.push_back([sink, initial, over] {
       for (const auto& e : initial) sink(e, false);
       if (over) sink(v1::SweepEvent(), true);
@@ -489,7 +493,7 @@ absl::StatusOr<int64_t> Coordinator::Watch(const Principal& who, const std::stri
     }
     const bool over = IsFinal(job->state);
     id = next_watch_id_++;
-    if (!over) watchers_[id] = Watcher{job->id, "", sink, nullptr};
+    if (!over) watchers_[id] = Watcher{job->id, "", sink, nullptr, std::max<int64_t>(0, from_step)};
     // Delivered before any later event: deferred callbacks run in order, and later events are
     // published under mu_ after this point.
     deferred.push_back([sink, initial, over] {

@@ -127,6 +127,7 @@ class Coordinator {
     std::string sweep_id; // a sweep watch, or ""
     WatchSink sink;
     SweepSink sweep_sink;
+    int64_t from_step = 0;  // points below it are not sent
   };
   using Deferred = std::vector<std::function<void()>>;  // callbacks to run after unlocking
 

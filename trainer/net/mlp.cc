@@ -72,6 +72,30 @@ torch::Tensor MlpImpl::Intervened(const std::vector<torch::Tensor>& base, const 
   return Head(h);
 }
 
+torch::Tensor MlpImpl::StackedForward(const torch::Tensor& embedded, const InterventionMasks& masks,
+                                      const std::vector<torch::Tensor>& source, const torch::Tensor& source_perm,
+                                      bool source_gradients) {
+  const int lo = masks.lowest_layer;
+  const int64_t b = embedded.size(0);
+  auto source_at = [&](int k, const torch::Tensor& base_k) {
+    if (!source_perm.defined()) return source[k];
+    torch::Tensor s = base_k.index_select(0, source_perm);
+    return source_gradients ? s : s.detach();
+  };
+  torch::Tensor h = embedded;
+  for (int k = 0; k <= lo; ++k) h = Layer(k, h);
+  torch::Tensor stacked = torch::cat({h, torch::where(masks.per_layer[lo], source_at(lo, h), h)});
+  for (int k = lo + 1; k < num_layers(); ++k) {
+    stacked = Layer(k, stacked);
+    if (k < static_cast<int>(masks.per_layer.size()) && masks.per_layer[k].defined()) {
+      torch::Tensor base_k = stacked.narrow(0, 0, b);
+      torch::Tensor patched = torch::where(masks.per_layer[k], source_at(k, base_k), stacked.narrow(0, b, b));
+      stacked = torch::cat({base_k, patched});
+    }
+  }
+  return Head(stacked);
+}
+
 std::vector<std::pair<std::string, torch::Tensor>> MlpImpl::NamedExport() const {
   std::vector<std::pair<std::string, torch::Tensor>> out;
   int64_t at = 0;

@@ -57,6 +57,16 @@ class MlpImpl : public torch::nn::Module {
   torch::Tensor Intervened(const std::vector<torch::Tensor>& base, const std::vector<torch::Tensor>& source,
                            const InterventionMasks& masks);
 
+  // The base run and the intervened run of one batch in a single pass, as training uses them:
+  // layers up to masks.lowest_layer run once on the base batch; from there on the base and
+  // intervened rows are stacked [2B, width] so each layer is one matmul. Sources for a masked
+  // layer k are `source[k]`, or, when `source_perm` is defined (in-batch sources), the base's
+  // own activation at k permuted by it (detached unless `source_gradients`). Returns logits
+  // [2B, classes], base rows first. REQUIRES: masks.lowest_layer >= 0.
+  torch::Tensor StackedForward(const torch::Tensor& embedded, const InterventionMasks& masks,
+                               const std::vector<torch::Tensor>& source, const torch::Tensor& source_perm,
+                               bool source_gradients);
+
   // The parameters under the documented export names: embed.<input> [values, dim],
   // hidden.<k>.weight [out, in], hidden.<k>.bias, out.weight, out.bias.
   std::vector<std::pair<std::string, torch::Tensor>> NamedExport() const;

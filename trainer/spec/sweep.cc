@@ -298,6 +298,7 @@ absl::StatusOr<SweepPlan> ExpandConfig(const ConfigNode& root, int64_t max_jobs)
         for (size_t k = 0; k < b.keys.size(); ++k) {
           if (keys.count(b.keys[k])) idx.push_back(k);
         }
+        if (idx.empty()) continue;
         if (idx.size() != keys.size()) same = false;
         for (const auto& point : b.points) {
           for (size_t j = 1; j < idx.size(); ++j) {

@@ -57,6 +57,29 @@ class LabelTables {
     }
     input_sizes_ = torch::tensor(sizes, torch::kInt64);
     input_strides_ = torch::tensor(strides, torch::kInt64);
+    num_sets_ = static_cast<int64_t>(sets.size());
+    Precompute();
+  }
+
+  // Input value indices [B, num_inputs] of input numbers [B]: one gather from the precomputed
+  // table when the input space is small, else decoded.
+  torch::Tensor Inputs(const torch::Tensor& numbers) const {
+    return all_inputs_.defined() ? all_inputs_.index_select(0, numbers) : Decode(numbers);
+  }
+  // The output's value index [B] for input numbers [B] (with their value indices `inputs`).
+  torch::Tensor OutputLabels(const torch::Tensor& numbers, const torch::Tensor& inputs) const {
+    return all_labels_.defined() ? all_labels_.index_select(0, numbers) : Values(inputs)[model_.output()];
+  }
+  // Counterfactual output labels [B] of (base, source, set) triples: one gather from the
+  // precomputed table of every triple when it is small enough, else the mechanism tables.
+  torch::Tensor Counterfactual(const torch::Tensor& base, const torch::Tensor& source, const torch::Tensor& set_index,
+                               const torch::Tensor& base_inputs, const torch::Tensor& source_inputs) const {
+    if (all_counterfactuals_.defined()) {
+      const int64_t n = model_.input_space_size();
+      return all_counterfactuals_.index_select(0, (set_index * n + base) * n + source);
+    }
+    std::vector<torch::Tensor> src = Values(source_inputs);
+    return Values(base_inputs, &src, &set_index)[model_.output()];
   }
 
   // Input value indices [B, num_inputs] of input numbers [B].
@@ -90,11 +113,41 @@ class LabelTables {
   }
 
  private:
+  // Largest tables kept in memory: inputs x num_inputs and sets x inputs^2 entries (int64).
+  static constexpr int64_t kMaxPrecomputedInputs = int64_t{1} << 20;
+  static constexpr int64_t kMaxPrecomputedTriples = int64_t{1} << 22;
+
+  void Precompute() {
+    torch::NoGradGuard no_grad;
+    const int64_t n = model_.input_space_size();
+    if (n > kMaxPrecomputedInputs) return;
+    torch::Tensor numbers = torch::arange(n, torch::kInt64);
+    all_inputs_ = Decode(numbers);
+    std::vector<torch::Tensor> vals = Values(all_inputs_);
+    all_labels_ = vals[model_.output()].contiguous();
+    if (num_sets_ == 0 || num_sets_ * n * n > kMaxPrecomputedTriples) return;
+    // Row (set, base) holds the counterfactual label for every source.
+    std::vector<torch::Tensor> rows;
+    for (int64_t s = 0; s < num_sets_; ++s) {
+      torch::Tensor set_index = torch::full({n * n}, s, torch::kInt64);
+      torch::Tensor base = numbers.repeat_interleave(n);
+      torch::Tensor source = numbers.repeat({n});
+      std::vector<torch::Tensor> src;
+      for (const auto& v : vals) src.push_back(v.index_select(0, source));
+      rows.push_back(Values(all_inputs_.index_select(0, base), &src, &set_index)[model_.output()]);
+    }
+    all_counterfactuals_ = torch::cat(rows).contiguous();
+  }
+
   const causal::CausalModel& model_;
   std::vector<torch::Tensor> tables_;
   std::vector<std::vector<int64_t>> strides_;
   std::vector<torch::Tensor> in_set_;
   torch::Tensor input_sizes_, input_strides_;
+  int64_t num_sets_ = 0;
+  torch::Tensor all_inputs_;           // [N, num_inputs], or undefined when N is large
+  torch::Tensor all_labels_;           // [N]
+  torch::Tensor all_counterfactuals_;  // [sets * N * N], or undefined when too large
 };
 
 // Where one variable's units are: a layer and unit indices (layer -1: not aligned).

@@ -24,6 +24,7 @@
 #include "trainer/causal/rng.h"
 #include "trainer/eval/wilson.h"
 #include "trainer/net/mlp.h"
+#include "trainer/train/flat_optimizer.h"
 #include "trainer/train/evaluation.h"
 
 #ifndef GRAFT_VERSION
@@ -218,7 +219,7 @@ class Run {
   causal::Rng rng_;  // sets, sources
 
   net::Mlp net_{nullptr};
-  std::unique_ptr<torch::optim::Optimizer> optimizer_;
+  std::unique_ptr<FlatOptimizer> optimizer_;
   std::vector<Tensor> layer_masks_;  // per layer: [num_sets, width] bool, or undefined
   int lowest_layer_ = -1, highest_layer_ = -1;
 
@@ -247,13 +248,12 @@ void Run::BuildNetwork() {
     if (p.requires_grad()) params.push_back(p);
   }
   const auto& opt = spec_.training.optimizer;
-  if (opt.type == spec::OptimizerType::kAdam) {
-    optimizer_ = std::make_unique<torch::optim::Adam>(
-        params, torch::optim::AdamOptions(opt.lr).weight_decay(opt.weight_decay));
-  } else {
-    optimizer_ = std::make_unique<torch::optim::SGD>(
-        params, torch::optim::SGDOptions(opt.lr).momentum(opt.momentum).weight_decay(opt.weight_decay));
-  }
+  FlatOptimizerOptions fo;
+  fo.adam = opt.type == spec::OptimizerType::kAdam;
+  fo.lr = opt.lr;
+  fo.weight_decay = opt.weight_decay;
+  fo.momentum = opt.momentum;
+  optimizer_ = std::make_unique<FlatOptimizer>(params, fo);
 }
 
 void Run::BuildSites() {
@@ -304,38 +304,31 @@ Tensor Run::InterveneLogits(const Tensor& base_in, const Tensor& source_in, cons
 std::pair<double, double> Run::Step() {
   const spec::TrainingSpec& t = spec_.training;
   const int B = t.batch_size;
-  const int out = job_.model->output();
   Tensor base_num = ToTensor(stream_.Next(B));
-  Tensor base_in = labels_.Decode(base_num);
-  std::vector<Tensor> base_vals = labels_.Values(base_in);
-  const int last = net_->num_layers() - 1;
-  std::vector<Tensor> acts = net_->Hidden(net_->Embed(base_in), last);
-  Tensor logits = net_->Head(acts.back());
-  Tensor loss_task = torch::nn::functional::cross_entropy(logits, base_vals[out]);
-  Tensor loss = loss_task * t.task_weight;
-  double iit_value = 0.0;
+  Tensor base_in = labels_.Inputs(base_num);
+  Tensor labels = labels_.OutputLabels(base_num, base_in);
+  Tensor embedded = net_->Embed(base_in);
+  Tensor loss_task, loss_iit;
   if (t.interchange_weight > 0 && lowest_layer_ >= 0) {
     std::vector<int64_t> z(B), src(B);
     const int num_sets = static_cast<int>(job_.sets.size());
     for (int i = 0; i < B; ++i) z[i] = static_cast<int64_t>(rng_.Uniform(num_sets));
     Tensor set_index = ToTensor(z);
-    std::vector<Tensor> source_acts(highest_layer_ + 1);
-    Tensor source_in;
+    std::vector<Tensor> source_acts;
+    Tensor source_num, source_in, perm;
     if (t.sources == spec::SourceMode::kInBatch) {
-      std::vector<int64_t> perm(B);
-      for (int i = 0; i < B; ++i) perm[i] = i;
-      rng_.Shuffle(perm);
-      Tensor p = ToTensor(perm);
-      source_in = base_in.index_select(0, p);
-      for (int l = lowest_layer_; l <= highest_layer_; ++l) {
-        if (!layer_masks_[l].defined()) continue;
-        source_acts[l] = acts[l].index_select(0, p);
-        if (!t.source_gradients) source_acts[l] = source_acts[l].detach();
-      }
+      // The sources are a permutation of the batch: their activations are the base's own.
+      std::vector<int64_t> order(B);
+      for (int i = 0; i < B; ++i) order[i] = i;
+      rng_.Shuffle(order);
+      perm = ToTensor(order);
+      source_num = base_num.index_select(0, perm);
+      source_in = base_in.index_select(0, perm);
     } else {
       const auto& train = job_.split.train;
       for (int i = 0; i < B; ++i) src[i] = train[rng_.Uniform(train.size())];
-      source_in = labels_.Decode(ToTensor(src));
+      source_num = ToTensor(src);
+      source_in = labels_.Inputs(source_num);
       if (t.source_gradients) {
         source_acts = net_->Hidden(net_->Embed(source_in), highest_layer_);
       } else {
@@ -343,20 +336,27 @@ std::pair<double, double> Run::Step() {
         source_acts = net_->Hidden(net_->Embed(source_in), highest_layer_);
       }
     }
-    std::vector<Tensor> source_vals = labels_.Values(source_in);
-    std::vector<Tensor> cf = labels_.Values(base_in, &source_vals, &set_index);
-    Tensor iit_logits = net_->Intervened(acts, source_acts, Masks(set_index));
-    Tensor loss_iit = torch::nn::functional::cross_entropy(iit_logits, cf[out]);
-    loss = loss + loss_iit * t.interchange_weight;
-    iit_value = loss_iit.item<double>();
+    Tensor cf = labels_.Counterfactual(base_num, source_num, set_index, base_in, source_in);
+    // Base and intervened rows in one pass; the layers below the lowest site run once.
+    Tensor logits = net_->StackedForward(embedded, Masks(set_index), source_acts, perm, t.source_gradients);
+    loss_task = torch::nn::functional::cross_entropy(logits.narrow(0, 0, B), labels);
+    loss_iit = torch::nn::functional::cross_entropy(logits.narrow(0, B, B), cf);
+  } else {
+    Tensor logits = net_->Head(net_->Hidden(embedded, net_->num_layers() - 1).back());
+    loss_task = torch::nn::functional::cross_entropy(logits, labels);
+  }
+  Tensor loss = t.task_weight == 1.0 ? loss_task : loss_task * t.task_weight;
+  if (loss_iit.defined()) {
+    loss = t.interchange_weight == 1.0 ? loss + loss_iit : loss + loss_iit * t.interchange_weight;
   }
   const double task_value = loss_task.item<double>();
+  const double iit_value = loss_iit.defined() ? loss_iit.item<double>() : 0.0;
   if (!std::isfinite(task_value) || !std::isfinite(iit_value)) {
     return {task_value, iit_value};  // the caller stops; no update with a bad loss
   }
-  optimizer_->zero_grad();
+  optimizer_->ZeroGrad();
   loss.backward();
-  optimizer_->step();
+  optimizer_->Step();
   return {task_value, iit_value};
 }
 
@@ -391,7 +391,7 @@ absl::Status Run::SaveCheckpoint(int64_t step) {
   for (const auto& item : net_->named_parameters(/*recurse=*/true)) archive.write("param." + item.key(), item.value());
   for (const auto& item : net_->named_buffers(/*recurse=*/true)) archive.write("buffer." + item.key(), item.value());
   torch::serialize::OutputArchive opt;
-  optimizer_->save(opt);
+  optimizer_->Save(opt);
   archive.write("optimizer", opt);
   archive.write("step", torch::tensor(step, torch::kInt64));
   archive.write("stream.order", ToTensor(stream_.order()));
@@ -405,6 +405,8 @@ absl::Status Run::SaveCheckpoint(int64_t step) {
   archive.write("wall_s", torch::tensor(wall, torch::kFloat64));
   const std::string hash = spec::SpecHash(spec_);
   archive.write("spec_hash", c10::IValue(hash));
+  // The step-0 evaluation feeds result.json's controls; a resumed attempt cannot recompute it.
+  archive.write("step0_eval", c10::IValue(step0_eval_.is_null() ? std::string() : step0_eval_.dump()));
   const fs::path path = fs::path(options_.out_dir) / "checkpoint.pt";
   const fs::path tmp = path.string() + ".tmp";
   try {
@@ -429,6 +431,11 @@ absl::Status Run::LoadCheckpoint(const fs::path& path, int64_t* step) {
           path.string(), ": this checkpoint belongs to a different spec (hash ", hash.toStringRef(),
           ", this config resolves to ", spec::SpecHash(spec_), "); resume with the same config and --set values"));
     }
+    c10::IValue step0;
+    if (archive.try_read("step0_eval", step0) && !step0.toStringRef().empty()) {
+      step0_eval_ = json::parse(step0.toStringRef(), nullptr, /*allow_exceptions=*/false);
+      if (step0_eval_.is_discarded()) step0_eval_ = json();
+    }
     torch::NoGradGuard no_grad;
     for (auto& item : net_->named_parameters(true)) {
       Tensor t;
@@ -442,7 +449,7 @@ absl::Status Run::LoadCheckpoint(const fs::path& path, int64_t* step) {
     }
     torch::serialize::InputArchive opt;
     archive.read("optimizer", opt);
-    optimizer_->load(opt);
+    optimizer_->Load(opt);
     Tensor t;
     archive.read("step", t);
     *step = t.item<int64_t>();
