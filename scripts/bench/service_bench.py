@@ -144,7 +144,7 @@ def bench_overhead(pb, pb_grpc, tmp, run):
 
 def bench_sweep(pb, pb_grpc, tmp, run):
     seeds = list(range(1, 9))
-    sets = ["training.steps=1000"]
+    sets = ["training.steps=2000"]  # the shipped demo size
     # Two parallel chains of graft-worker run on the same 8 jobs.
     env = dict(os.environ, OPENBLAS_NUM_THREADS="1")
     chains_dir = os.path.join(tmp, "chains%d" % run)
@@ -170,7 +170,7 @@ def bench_sweep(pb, pb_grpc, tmp, run):
     finally:
         c.stop()
     eff = chains / service
-    print("  run %d: 8 jobs of 1000 steps: two chains of graft-worker run %.2f s, service %.2f s (submit to last "
+    print("  run %d: 8 jobs of 2000 steps: two chains of graft-worker run %.2f s, service %.2f s (submit to last "
           "finish), efficiency %.3f" % (run + 1, chains, service, eff))
     return eff
 

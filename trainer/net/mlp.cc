@@ -39,6 +39,10 @@ torch::Tensor MlpImpl::Embed(const torch::Tensor& inputs) {
   return embed_.index_select(0, rows).reshape({inputs.size(0), -1});
 }
 
+torch::Tensor MlpImpl::EmbedRows(const torch::Tensor& rows, int64_t batch) {
+  return embed_.index_select(0, rows).reshape({batch, -1});
+}
+
 torch::Tensor MlpImpl::Layer(int k, const torch::Tensor& below) { return Activate(layers_[k]->forward(below)); }
 
 std::vector<torch::Tensor> MlpImpl::Hidden(const torch::Tensor& embedded, int upto) {

@@ -41,6 +41,11 @@ class MlpImpl : public torch::nn::Module {
   // Embeds input value indices [B, num_inputs] (int64) into [B, num_inputs * dim], the
   // embeddings concatenated in input order.
   torch::Tensor Embed(const torch::Tensor& inputs);
+  // The same from embedding rows (value index + the input's row offset), flattened [B * num_inputs]:
+  // a caller that precomputes rows saves the addition.
+  torch::Tensor EmbedRows(const torch::Tensor& rows, int64_t batch);
+  // Each input's first row in the embedding table [num_inputs] (int64).
+  const torch::Tensor& offsets() const { return offsets_; }
   // Activations of layers 0..upto (inclusive) for the embedded batch.
   std::vector<torch::Tensor> Hidden(const torch::Tensor& embedded, int upto);
   // Layer k's activation from layer k-1's (k = 0: from the embedding).

@@ -220,6 +220,10 @@ class Run {
 
   net::Mlp net_{nullptr};
   std::unique_ptr<FlatOptimizer> optimizer_;
+  // Pre-allocated per-step index tensors (filled in place each step) and, for a small input
+  // space, every input's embedding rows [N, num_inputs] (value index + row offset).
+  Tensor step_base_, step_sets_, step_perm_, step_sources_;
+  Tensor all_rows_;
   std::vector<Tensor> layer_masks_;  // per layer: [num_sets, width] bool, or undefined
   int lowest_layer_ = -1, highest_layer_ = -1;
 
@@ -254,6 +258,10 @@ void Run::BuildNetwork() {
   fo.weight_decay = opt.weight_decay;
   fo.momentum = opt.momentum;
   optimizer_ = std::make_unique<FlatOptimizer>(params, fo);
+  const int64_t n = job_.model->input_space_size();
+  if (n <= (int64_t{1} << 20)) {
+    all_rows_ = labels_.Inputs(torch::arange(n, torch::kInt64)) + net_->offsets();
+  }
 }
 
 void Run::BuildSites() {
@@ -304,16 +312,23 @@ Tensor Run::InterveneLogits(const Tensor& base_in, const Tensor& source_in, cons
 std::pair<double, double> Run::Step() {
   const spec::TrainingSpec& t = spec_.training;
   const int B = t.batch_size;
-  Tensor base_num = ToTensor(stream_.Next(B));
+  auto fill = [](Tensor& dst, int n, const auto& produce) {
+    if (!dst.defined() || dst.size(0) != n) dst = torch::empty({n}, torch::kInt64);
+    int64_t* p = dst.data_ptr<int64_t>();
+    for (int i = 0; i < n; ++i) p[i] = produce(i);
+  };
+  const std::vector<int64_t> batch = stream_.Next(B);
+  fill(step_base_, B, [&](int i) { return batch[i]; });
+  const Tensor& base_num = step_base_;
   Tensor base_in = labels_.Inputs(base_num);
   Tensor labels = labels_.OutputLabels(base_num, base_in);
-  Tensor embedded = net_->Embed(base_in);
+  Tensor embedded = all_rows_.defined() ? net_->EmbedRows(all_rows_.index_select(0, base_num).reshape({-1}), B)
+                                        : net_->Embed(base_in);
   Tensor loss_task, loss_iit;
   if (t.interchange_weight > 0 && lowest_layer_ >= 0) {
-    std::vector<int64_t> z(B), src(B);
     const int num_sets = static_cast<int>(job_.sets.size());
-    for (int i = 0; i < B; ++i) z[i] = static_cast<int64_t>(rng_.Uniform(num_sets));
-    Tensor set_index = ToTensor(z);
+    fill(step_sets_, B, [&](int) { return static_cast<int64_t>(rng_.Uniform(num_sets)); });
+    const Tensor& set_index = step_sets_;
     std::vector<Tensor> source_acts;
     Tensor source_num, source_in, perm;
     if (t.sources == spec::SourceMode::kInBatch) {
@@ -321,13 +336,14 @@ std::pair<double, double> Run::Step() {
       std::vector<int64_t> order(B);
       for (int i = 0; i < B; ++i) order[i] = i;
       rng_.Shuffle(order);
-      perm = ToTensor(order);
+      fill(step_perm_, B, [&](int i) { return order[i]; });
+      perm = step_perm_;
       source_num = base_num.index_select(0, perm);
       source_in = base_in.index_select(0, perm);
     } else {
       const auto& train = job_.split.train;
-      for (int i = 0; i < B; ++i) src[i] = train[rng_.Uniform(train.size())];
-      source_num = ToTensor(src);
+      fill(step_sources_, B, [&](int) { return train[rng_.Uniform(train.size())]; });
+      source_num = step_sources_;
       source_in = labels_.Inputs(source_num);
       if (t.source_gradients) {
         source_acts = net_->Hidden(net_->Embed(source_in), highest_layer_);
