@@ -277,3 +277,24 @@ TEST_F(AnalysisTest, WeightsThatDoNotFitAreRefusedNamingTensorsAndShapes) {
 
 }  // namespace
 }  // namespace graft
+
+namespace graft {
+namespace {
+
+// A `scan:` or `das:` block makes `run` analyse the network it has just trained, into the same
+// run directory.
+TEST(RunWithAnalysisBlocks, ScanAndDasRunAfterTraining) {
+  ::graft::testing::ScopedTempDir dir;
+  auto r = ::graft::testing::RunCommand(
+      ::graft::testing::BinaryDir() + "/bin/graft-worker run " + ::graft::testing::SourceDir() +
+      "/configs/parcel-routing.yaml --out " + dir.path() +
+      " --set training.steps=300 --set evaluation.triples=512 --set 'scan={layers: [1], triples: 256}'"
+      " --set 'das={steps: 50}'");
+  ASSERT_EQ(r.exit_code, 0) << r.output;
+  for (const char* f : {"weights.pt", "result.json", "scan.json", "scan.tsv", "scan.svg", "das.json", "rotation.pt"}) {
+    EXPECT_TRUE(std::ifstream(dir.path() + "/" + f).good()) << f << " missing\n" << r.output;
+  }
+}
+
+}  // namespace
+}  // namespace graft

@@ -43,6 +43,29 @@ int RunCommand(const RunArgs& args, const std::atomic<bool>* stop, std::ostream&
     return kExitInterrupted;
   }
   out << "finished " << outcome->step << " steps; artifacts in " << args.out_dir << "\n";
+  // A `scan:` or `das:` block also analyses the trained network, into the same directory.
+  if (job->spec.scan.present || job->spec.das.present) {
+    train::AnalysisOptions analysis;
+    analysis.weights_path = args.out_dir + "/weights.pt";
+    analysis.out_dir = args.out_dir;
+    analysis.progress = &err;
+    if (job->spec.scan.present) {
+      auto summary = train::ScanStored(*job, analysis);
+      if (!summary.ok()) {
+        err << "graft-worker: scan after training: " << summary.status().message() << "\n";
+        return kExitFailure;
+      }
+      out << *summary;
+    }
+    if (job->spec.das.present) {
+      auto summary = train::DasStored(*job, analysis);
+      if (!summary.ok()) {
+        err << "graft-worker: DAS after training: " << summary.status().message() << "\n";
+        return kExitFailure;
+      }
+      out << *summary;
+    }
+  }
   return kExitOk;
 }
 
