@@ -187,29 +187,23 @@ class Run {
         options_(options),
         labels_(*job.model, job.sets),
         stream_(job.split.train, job.spec.seed),
-        rng_(job.spec.seed, 0x1117) {}
+        rng_(job.spec.seed, 0x1117),
+        masks_(job.sets, AlignmentSites(job), job.spec.network.hidden),
+        eval_(CreateEvalInputs(job)) {}
 
   absl::StatusOr<RunOutcome> Execute();
 
  private:
   void BuildNetwork();
-  void BuildSites();
-  void BuildEvaluation();
   // One optimiser step; returns the two loss values.
   std::pair<double, double> Step();
   json Evaluate(int64_t step);
-  EvalInputs EvalData() const { return EvalInputs{eval_train_, eval_test_, triple_base_, triple_source_, triple_set_}; }
   absl::Status SaveCheckpoint(int64_t step);
   absl::Status LoadCheckpoint(const fs::path& path, int64_t* step);
   absl::Status WriteWeights(const fs::path& path);
   absl::Status WriteProbe();
   json Provenance() const;
   void Progress(int64_t step, bool final_line);
-
-  // Intervened logits for base inputs [B, I] and source inputs [B, I] with sets [B].
-  Tensor InterveneLogits(const Tensor& base_in, const Tensor& source_in, const Tensor& set_index,
-                         Tensor* base_logits);
-  net::InterventionMasks Masks(const Tensor& set_index) const;
 
   const spec::ResolvedJob& job_;
   const spec::JobSpec& spec_;
@@ -224,12 +218,8 @@ class Run {
   // space, every input's embedding rows [N, num_inputs] (value index + row offset).
   Tensor step_base_, step_sets_, step_perm_, step_sources_;
   Tensor all_rows_;
-  std::vector<Tensor> layer_masks_;  // per layer: [num_sets, width] bool, or undefined
-  int lowest_layer_ = -1, highest_layer_ = -1;
-
-  // Evaluation data, fixed for the whole run.
-  Tensor eval_train_, eval_test_;              // input numbers
-  Tensor triple_base_, triple_source_, triple_set_;
+  const UnitMasks masks_;   // the alignment's units per intervention set and layer
+  const EvalInputs eval_;   // evaluation data, fixed for the whole run
 
   // Loss sums since the last evaluation.
   double loss_task_sum_ = 0, loss_iit_sum_ = 0;
@@ -264,51 +254,6 @@ void Run::BuildNetwork() {
   }
 }
 
-void Run::BuildSites() {
-  const int layers = static_cast<int>(spec_.network.hidden.size());
-  layer_masks_.assign(layers, Tensor());
-  const int num_sets = static_cast<int>(job_.sets.size());
-  for (int s = 0; s < num_sets; ++s) {
-    for (int v : job_.sets[s].variables) {
-      const spec::SiteSpec& site = spec_.alignment[job_.site_of_variable[v]];
-      Tensor& m = layer_masks_[site.layer];
-      if (!m.defined()) m = torch::zeros({num_sets, spec_.network.hidden[site.layer]}, torch::kBool);
-      for (int u : site.units) m[s][u] = true;
-      lowest_layer_ = lowest_layer_ < 0 ? site.layer : std::min(lowest_layer_, site.layer);
-      highest_layer_ = std::max(highest_layer_, site.layer);
-    }
-  }
-}
-
-void Run::BuildEvaluation() {
-  EvalInputs e = CreateEvalInputs(job_);
-  eval_train_ = e.train;
-  eval_test_ = e.test;
-  triple_base_ = e.base;
-  triple_source_ = e.source;
-  triple_set_ = e.set;
-}
-
-net::InterventionMasks Run::Masks(const Tensor& set_index) const {
-  net::InterventionMasks masks;
-  masks.lowest_layer = lowest_layer_;
-  masks.per_layer.resize(layer_masks_.size());
-  for (size_t l = 0; l < layer_masks_.size(); ++l) {
-    if (layer_masks_[l].defined()) masks.per_layer[l] = layer_masks_[l].index_select(0, set_index);
-  }
-  return masks;
-}
-
-Tensor Run::InterveneLogits(const Tensor& base_in, const Tensor& source_in, const Tensor& set_index,
-                            Tensor* base_logits) {
-  const int last = net_->num_layers() - 1;
-  std::vector<Tensor> base = net_->Hidden(net_->Embed(base_in), last);
-  if (base_logits) *base_logits = net_->Head(base.back());
-  if (lowest_layer_ < 0) return net_->Head(base.back());
-  std::vector<Tensor> source = net_->Hidden(net_->Embed(source_in), highest_layer_);
-  return net_->Intervened(base, source, Masks(set_index));
-}
-
 std::pair<double, double> Run::Step() {
   const spec::TrainingSpec& t = spec_.training;
   const int B = t.batch_size;
@@ -325,7 +270,7 @@ std::pair<double, double> Run::Step() {
   Tensor embedded = all_rows_.defined() ? net_->EmbedRows(all_rows_.index_select(0, base_num).reshape({-1}), B)
                                         : net_->Embed(base_in);
   Tensor loss_task, loss_iit;
-  if (t.interchange_weight > 0 && lowest_layer_ >= 0) {
+  if (t.interchange_weight > 0 && masks_.lowest_layer() >= 0) {
     const int num_sets = static_cast<int>(job_.sets.size());
     fill(step_sets_, B, [&](int) { return static_cast<int64_t>(rng_.Uniform(num_sets)); });
     const Tensor& set_index = step_sets_;
@@ -346,15 +291,15 @@ std::pair<double, double> Run::Step() {
       source_num = step_sources_;
       source_in = labels_.Inputs(source_num);
       if (t.source_gradients) {
-        source_acts = net_->Hidden(net_->Embed(source_in), highest_layer_);
+        source_acts = net_->Hidden(net_->Embed(source_in), masks_.highest_layer());
       } else {
         torch::NoGradGuard no_grad;
-        source_acts = net_->Hidden(net_->Embed(source_in), highest_layer_);
+        source_acts = net_->Hidden(net_->Embed(source_in), masks_.highest_layer());
       }
     }
     Tensor cf = labels_.Counterfactual(base_num, source_num, set_index, base_in, source_in);
     // Base and intervened rows in one pass; the layers below the lowest site run once.
-    Tensor logits = net_->StackedForward(embedded, Masks(set_index), source_acts, perm, t.source_gradients);
+    Tensor logits = net_->StackedForward(embedded, masks_.ForSets(set_index), source_acts, perm, t.source_gradients);
     loss_task = torch::nn::functional::cross_entropy(logits.narrow(0, 0, B), labels);
     loss_iit = torch::nn::functional::cross_entropy(logits.narrow(0, B, B), cf);
   } else {
@@ -392,9 +337,9 @@ json Run::Evaluate(int64_t step) {
     m["loss_interchange"] = nullptr;
   }
   // The same function as `graft-worker evaluate`, so both report identical figures.
-  json net_metrics = EvaluateNetwork(job_, *net_, labels_, EvalData(),
+  json net_metrics = EvaluateNetwork(job_, *net_, labels_, eval_,
                                      [&](const Tensor& b, const Tensor& s, const Tensor& z) {
-                                       return InterveneLogits(b, s, z, nullptr);
+                                       return masks_.Logits(*net_, b, s, z, nullptr);
                                      });
   for (auto& [k, v] : net_metrics.items()) m[k] = v;
   loss_task_sum_ = loss_iit_sum_ = 0;
@@ -501,12 +446,12 @@ absl::Status Run::WriteWeights(const fs::path& path) {
 
 absl::Status Run::WriteProbe() {
   c10::InferenceMode guard;
-  const int64_t n = std::min<int64_t>(options_.probe_triples, triple_base_.size(0));
-  Tensor b_in = labels_.Decode(triple_base_.narrow(0, 0, n));
-  Tensor s_in = labels_.Decode(triple_source_.narrow(0, 0, n));
-  Tensor z = triple_set_.narrow(0, 0, n);
+  const int64_t n = std::min<int64_t>(options_.probe_triples, eval_.base.size(0));
+  Tensor b_in = labels_.Decode(eval_.base.narrow(0, 0, n));
+  Tensor s_in = labels_.Decode(eval_.source.narrow(0, 0, n));
+  Tensor z = eval_.set.narrow(0, 0, n);
   Tensor base_logits;
-  Tensor iit = InterveneLogits(b_in, s_in, z, &base_logits);
+  Tensor iit = masks_.Logits(*net_, b_in, s_in, z, &base_logits);
   json j;
   const auto& model = *job_.model;
   j["inputs"] = json::array();
@@ -598,8 +543,6 @@ absl::StatusOr<RunOutcome> Run::Execute() {
   if (ec) return absl::UnavailableError(absl::StrCat(out.string(), ": cannot create: ", ec.message()));
 
   BuildNetwork();
-  BuildSites();
-  BuildEvaluation();
   start_ = std::chrono::steady_clock::now();
   last_progress_ = start_;
 
@@ -706,7 +649,7 @@ absl::StatusOr<RunOutcome> Run::Execute() {
     result["iia_step0"] = json{{"iia_test", step0_eval_["iia_test"]}, {"iia_changed_test", step0_eval_["iia_changed_test"]}};
   }
   std::vector<std::string> failures;
-  json controls = FinalControls(job_, *net_, labels_, EvalData(), &failures);
+  json controls = FinalControls(job_, *net_, labels_, eval_, &failures);
   for (auto& [k, v] : controls.items()) result[k] = v;
   std::string failure_text;
   for (const auto& f : failures) failure_text += f + "\n";
