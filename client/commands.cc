@@ -10,7 +10,7 @@
 #include <sstream>
 
 #include "client/render.h"
-#include "client/sha256.h"
+#include "proto/sha256.h"
 #include "client/stats.h"
 #include "trainer/spec/spec.h"
 #include "trainer/spec/suggest.h"
@@ -615,7 +615,7 @@ int FetchCommand(Api& api, const FetchArgs& args, Io& io) {
       io.err << "graft: cannot write '" << part_path << "'\n";
       return kExitFailure;
     }
-    Sha256 sha;
+    graft::Sha256 sha;
     int64_t total = -1, got = 0;
     std::string want_sha;
     s = api.Download(t.id, name, [&](const v1::ArtifactChunk& c) {

@@ -1,11 +1,10 @@
 #include "server/auth.h"
 
-#include <openssl/evp.h>
-
 #include <cctype>
 
 #include "absl/status/status.h"
 #include "absl/strings/str_cat.h"
+#include "proto/sha256.h"
 #include "trainer/spec/config_tree.h"
 
 namespace graft::server {
@@ -17,19 +16,6 @@ const char* ToString(Role r) {
     case Role::kAdmin: return "admin";
   }
   return "?";
-}
-
-std::string Sha256Hex(const std::string& data) {
-  unsigned char digest[EVP_MAX_MD_SIZE];
-  unsigned int len = 0;
-  EVP_Digest(data.data(), data.size(), digest, &len, EVP_sha256(), nullptr);
-  static const char kHex[] = "0123456789abcdef";
-  std::string out;
-  for (unsigned int i = 0; i < len; ++i) {
-    out.push_back(kHex[digest[i] >> 4]);
-    out.push_back(kHex[digest[i] & 15]);
-  }
-  return out;
 }
 
 absl::StatusOr<TokenTable> TokenTable::Parse(const std::string& yaml, const std::string& source) {

@@ -20,9 +20,6 @@ struct Principal {
   Role role = Role::kUser;
 };
 
-// Lowercase hex SHA-256 of `data`.
-std::string Sha256Hex(const std::string& data);
-
 class TokenTable {
  public:
   // Reads a YAML list of {name, role: user|worker|admin, sha256: <64 hex>}. Errors name the

@@ -34,17 +34,12 @@ bool IsArtifactName(const std::string& name) {
   return false;
 }
 
-std::string HexDigest(EVP_MD_CTX* ctx) {
-  unsigned char digest[EVP_MAX_MD_SIZE];
-  unsigned int len = 0;
-  EVP_DigestFinal_ex(ctx, digest, &len);
-  static const char kHex[] = "0123456789abcdef";
-  std::string out;
-  for (unsigned int i = 0; i < len; ++i) {
-    out.push_back(kHex[digest[i] >> 4]);
-    out.push_back(kHex[digest[i] & 15]);
-  }
-  return out;
+v1::MetricPoint PointProto(const PointRecord& p) {
+  v1::MetricPoint m;
+  m.set_step(p.step);
+  m.set_attempt(p.attempt);
+  m.set_metrics_json(p.metrics_json);
+  return m;
 }
 
 }  // namespace
@@ -63,7 +58,6 @@ absl::StatusOr<int64_t> ParseJobId(const std::string& text) {
 }
 
 Upload::~Upload() {
-  if (sha_ != nullptr) EVP_MD_CTX_free(sha_);
   if (!committed_ && !tmp_path_.empty()) {
     out_.close();
     std::error_code ec;
@@ -77,7 +71,7 @@ absl::Status Upload::Write(const std::string& bytes) {
     return absl::InvalidArgumentError(absl::StrCat("upload of ", header_.name(), " exceeds its declared ",
                                                    header_.total_bytes(), " bytes"));
   }
-  EVP_DigestUpdate(sha_, bytes.data(), bytes.size());
+  sha_.Update(bytes);
   out_.write(bytes.data(), static_cast<std::streamsize>(bytes.size()));
   if (!out_) return absl::UnavailableError(absl::StrCat(tmp_path_, ": write failed (disk full?)"));
   return absl::OkStatus();
@@ -221,9 +215,7 @@ absl::StatusOr<v1::Job> Coordinator::Get(const Principal& who, const std::string
   auto points = store_->Points(job->id, 0);
   if (!points.ok()) return points.status();
   if (!points->empty()) {
-    p.mutable_latest()->set_step(points->back().step);
-    p.mutable_latest()->set_attempt(points->back().attempt);
-    p.mutable_latest()->set_metrics_json(points->back().metrics_json);
+    *p.mutable_latest() = PointProto(points->back());
   }
   return p;
 }
@@ -290,11 +282,7 @@ absl::StatusOr<std::vector<v1::MetricPoint>> Coordinator::Metrics(const Principa
   if (!points.ok()) return points.status();
   std::vector<v1::MetricPoint> out;
   for (const auto& p : *points) {
-    v1::MetricPoint m;
-    m.set_step(p.step);
-    m.set_attempt(p.attempt);
-    m.set_metrics_json(p.metrics_json);
-    out.push_back(std::move(m));
+    out.push_back(PointProto(p));
   }
   return out;
 }
@@ -428,9 +416,7 @@ absl::StatusOr<int64_t> Coordinator::WatchSweep(const Principal& who, const std:
       for (const auto& p : *points) {
         v1::SweepEvent e;
         e.set_job_id(JobName(job.id));
-        e.mutable_event()->mutable_point()->set_step(p.step);
-        e.mutable_event()->mutable_point()->set_attempt(p.attempt);
-        e.mutable_event()->mutable_point()->set_metrics_json(p.metrics_json);
+        *e.mutable_event()->mutable_point() = PointProto(p);
         initial.push_back(std::move(e));
       }
     }
@@ -486,9 +472,7 @@ absl::StatusOr<int64_t> Coordinator::Watch(const Principal& who, const std::stri
     initial.push_back(state);
     for (const auto& p : *points) {
       v1::JobEvent e;
-      e.mutable_point()->set_step(p.step);
-      e.mutable_point()->set_attempt(p.attempt);
-      e.mutable_point()->set_metrics_json(p.metrics_json);
+      *e.mutable_point() = PointProto(p);
       initial.push_back(std::move(e));
     }
     const bool over = IsFinal(job->state);
@@ -655,9 +639,7 @@ absl::StatusOr<v1::ReportResponse> Coordinator::Report(const v1::ReportRequest& 
       for (const auto& p : points) {
         ack = std::max(ack, p.step);
         v1::JobEvent e;
-        e.mutable_point()->set_step(p.step);
-        e.mutable_point()->set_attempt(p.attempt);
-        e.mutable_point()->set_metrics_json(p.metrics_json);
+        *e.mutable_point() = PointProto(p);
         Publish(*job, e, false, deferred);
       }
     }
@@ -710,8 +692,6 @@ absl::StatusOr<std::unique_ptr<Upload>> Coordinator::BeginUpload(const v1::Artif
   up->tmp_path_ = absl::StrCat(up->final_path_, ".attempt", header.attempt(), ".tmp");
   up->out_.open(up->tmp_path_, std::ios::binary | std::ios::trunc);
   if (!up->out_) return absl::UnavailableError(absl::StrCat(up->tmp_path_, ": cannot write"));
-  up->sha_ = EVP_MD_CTX_new();
-  EVP_DigestInit_ex(up->sha_, EVP_sha256(), nullptr);
   return up;
 }
 
@@ -722,7 +702,7 @@ absl::StatusOr<int64_t> Coordinator::CommitUpload(Upload& up) {
     return absl::DataLossError(absl::StrCat("upload of ", up.header_.name(), " ended after ", up.written_,
                                             " of ", up.header_.total_bytes(), " bytes"));
   }
-  const std::string digest = HexDigest(up.sha_);
+  const std::string digest = up.sha_.HexDigest();
   if (digest != up.header_.sha256()) {
     return absl::DataLossError(absl::StrCat("upload of ", up.header_.name(), ": SHA-256 ", digest,
                                             " does not match the declared ", up.header_.sha256()));

@@ -7,8 +7,6 @@
 #ifndef GRAFT_SERVER_COORDINATOR_H_
 #define GRAFT_SERVER_COORDINATOR_H_
 
-#include <openssl/evp.h>
-
 #include <condition_variable>
 #include <cstdint>
 #include <fstream>
@@ -22,6 +20,7 @@
 
 #include "absl/status/statusor.h"
 #include "graft/v1/graft.pb.h"
+#include "proto/sha256.h"
 #include "server/auth.h"
 #include "server/job_store.h"
 #include "spdlog/logger.h"
@@ -60,7 +59,7 @@ class Upload {
   std::string tmp_path_, final_path_;
   std::ofstream out_;
   int64_t written_ = 0;
-  EVP_MD_CTX* sha_ = nullptr;
+  Sha256 sha_;
   bool committed_ = false;
 };
 

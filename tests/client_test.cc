@@ -14,7 +14,7 @@
 #include "client/commands.h"
 #include "client/render.h"
 #include "client/settings.h"
-#include "client/sha256.h"
+#include "proto/sha256.h"
 #include "client/stats.h"
 #include "gtest/gtest.h"
 #include "nlohmann/json.hpp"
@@ -737,12 +737,12 @@ TEST(ClientStats, MeanIntervalByHand) {
 TEST(ClientSha256, MatchesFipsExamplesAndCoreutils) {
   // FIPS 180-2, Appendix B (one-block, two-block and long messages); digests from memory,
   // which the coreutils comparison below cross-checks.
-  EXPECT_EQ(client::Sha256Hex("abc"), "ba7816bf8f01cfea414140de5dae2223b00361a396177a9cb410ff61f20015ad");
-  EXPECT_EQ(client::Sha256Hex("abcdbcdecdefdefgefghfghighijhijkijkljklmklmnlmnomnopnopq"),
+  EXPECT_EQ(graft::Sha256Hex("abc"), "ba7816bf8f01cfea414140de5dae2223b00361a396177a9cb410ff61f20015ad");
+  EXPECT_EQ(graft::Sha256Hex("abcdbcdecdefdefgefghfghighijhijkijkljklmklmnlmnomnopnopq"),
             "248d6a61d20638b8e5c026930c3e6039a33ce45964ff2167f6ecedd419db06c1");
-  EXPECT_EQ(client::Sha256Hex(std::string(1000000, 'a')),
+  EXPECT_EQ(graft::Sha256Hex(std::string(1000000, 'a')),
             "cdc76e5c9914fb9281a1c7e284d73e67f1809a48a497200e046d39ccc7112cd0");
-  EXPECT_EQ(client::Sha256Hex(""), "e3b0c44298fc1c149afbf4c8996fb92427ae41e4649b934ca495991b7852b855");
+  EXPECT_EQ(graft::Sha256Hex(""), "e3b0c44298fc1c149afbf4c8996fb92427ae41e4649b934ca495991b7852b855");
   // Every length around the block and padding boundaries, fed in uneven pieces, against sha256sum.
   ScopedTempDir dir;
   std::string data;
@@ -752,7 +752,7 @@ TEST(ClientSha256, MatchesFipsExamplesAndCoreutils) {
     WriteFile(dir.path() + "/b", bytes);
     auto sum = RunCommand("sha256sum " + dir.path() + "/b");
     ASSERT_EQ(sum.exit_code, 0);
-    client::Sha256 s;
+    graft::Sha256 s;
     for (size_t i = 0; i < bytes.size(); i += 7) s.Update(bytes.substr(i, 7));
     EXPECT_EQ(s.HexDigest(), sum.output.substr(0, 64)) << len;
   }
@@ -914,7 +914,7 @@ class DamagedDownloadApi : public FakeApi {
     if (name != "weights.pt") return grpc::Status(grpc::StatusCode::NOT_FOUND, "no " + name);
     v1::ArtifactChunk c;
     c.set_total_bytes(5);
-    c.set_sha256(client::Sha256Hex("hello"));
+    c.set_sha256(graft::Sha256Hex("hello"));
     c.set_data("hellO");  // one byte flipped on the way
     on_chunk(c);
     return grpc::Status::OK;

@@ -16,7 +16,7 @@
 
 #include "graft/v1/graft.grpc.pb.h"
 #include "gtest/gtest.h"
-#include "server/auth.h"
+#include "proto/sha256.h"
 #include "tests/test_util.h"
 
 namespace graft::testing {
@@ -34,7 +34,7 @@ class Cluster {
     std::ostringstream tokens;
     for (auto [token, name, role] : {std::tuple{kAlice, "alice", "user"}, std::tuple{kBob, "bob", "user"},
                                      std::tuple{kRoot, "root", "admin"}, std::tuple{kWorker, "node1", "worker"}}) {
-      tokens << "- {name: " << name << ", role: " << role << ", sha256: " << server::Sha256Hex(token) << "}\n";
+      tokens << "- {name: " << name << ", role: " << role << ", sha256: " << graft::Sha256Hex(token) << "}\n";
     }
     WriteFile(dir_.path() + "/tokens.yaml", tokens.str());
     WriteFile(dir_.path() + "/worker.token", std::string(kWorker) + "\n");

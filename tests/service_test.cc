@@ -16,7 +16,7 @@
 #include "graft/v1/graft.grpc.pb.h"
 #include "gtest/gtest.h"
 #include "nlohmann/json.hpp"
-#include "server/auth.h"
+#include "proto/sha256.h"
 #include "tests/cluster.h"
 #include "tests/test_util.h"
 
@@ -80,7 +80,7 @@ TEST(Service, SubmitTrainAndFetchArtifacts) {
   }
   ASSERT_TRUE(reader->Finish().ok());
   EXPECT_EQ(static_cast<int64_t>(bytes.size()), total);
-  EXPECT_EQ(server::Sha256Hex(bytes), sha);
+  EXPECT_EQ(graft::Sha256Hex(bytes), sha);
   // One log line per state change, with the job id and attempt; no token in the log.
   const std::string log = c.Log();
   EXPECT_NE(log.find("job " + id + " attempt 1: running on"), std::string::npos) << log;

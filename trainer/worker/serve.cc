@@ -1,6 +1,5 @@
 #include "trainer/worker/serve.h"
 
-#include <openssl/evp.h>
 #include <unistd.h>
 
 #include <chrono>
@@ -16,6 +15,7 @@
 
 #include "absl/strings/str_cat.h"
 #include "graft/v1/graft.grpc.pb.h"
+#include "proto/sha256.h"
 #include "trainer/spec/spec.h"
 #include "trainer/train/trainer.h"
 #include "trainer/worker/commands.h"
@@ -25,32 +25,6 @@ namespace {
 
 namespace fs = std::filesystem;
 using Clock = std::chrono::steady_clock;
-
-std::string Sha256File(const std::string& path, int64_t* bytes) {
-  std::ifstream in(path, std::ios::binary);
-  EVP_MD_CTX* ctx = EVP_MD_CTX_new();
-  EVP_DigestInit_ex(ctx, EVP_sha256(), nullptr);
-  std::string buf(1 << 20, '\0');
-  *bytes = 0;
-  while (in) {
-    in.read(buf.data(), static_cast<std::streamsize>(buf.size()));
-    const std::streamsize n = in.gcount();
-    if (n <= 0) break;
-    EVP_DigestUpdate(ctx, buf.data(), static_cast<size_t>(n));
-    *bytes += n;
-  }
-  unsigned char digest[EVP_MAX_MD_SIZE];
-  unsigned int len = 0;
-  EVP_DigestFinal_ex(ctx, digest, &len);
-  EVP_MD_CTX_free(ctx);
-  static const char kHex[] = "0123456789abcdef";
-  std::string out;
-  for (unsigned int i = 0; i < len; ++i) {
-    out.push_back(kHex[digest[i] >> 4]);
-    out.push_back(kHex[digest[i] & 15]);
-  }
-  return out;
-}
 
 bool Retryable(const grpc::Status& s) {
   return s.error_code() == grpc::StatusCode::UNAVAILABLE || s.error_code() == grpc::StatusCode::DEADLINE_EXCEEDED ||
