@@ -1,5 +1,8 @@
 #include "trainer/spec/config_tree.h"
 
+#include <cmath>
+#include <cstdio>
+#include <cstdlib>
 #include <fstream>
 #include <map>
 #include <memory>
@@ -227,6 +230,21 @@ void Emit(const ConfigNode& n, int indent, std::ostringstream& out, bool) {
 }
 
 }  // namespace
+
+// Shortest decimal text that reads back as the same double; whole numbers below 10^15 are
+// written without an exponent (10, not 1e+01).
+std::string FormatDouble(double x) {
+  char buf[64];
+  if (x == std::floor(x) && std::fabs(x) < 1e15) {
+    std::snprintf(buf, sizeof(buf), "%.0f", x);
+    return buf;
+  }
+  for (int p = 1; p <= 17; ++p) {
+    std::snprintf(buf, sizeof(buf), "%.*g", p, x);
+    if (std::strtod(buf, nullptr) == x) break;
+  }
+  return buf;
+}
 
 std::string Location::ToString() const { return absl::StrCat(source, ":", line, ":", column); }
 

@@ -57,6 +57,10 @@ absl::StatusOr<ConfigNode> ParseYamlFile(const std::string& path);
 // YAML, missing maps on the path are created, numeric path segments index lists.
 absl::Status ApplyOverride(ConfigNode& root, const std::string& assignment, int n);
 
+// Shortest decimal text that reads back as the same double; whole numbers below 10^15 are
+// written without an exponent (10, not 1e+01). For numbers written into config text.
+std::string FormatDouble(double x);
+
 // Writes the tree back as YAML (block style, keys in order).
 std::string ToYaml(const ConfigNode& node);
 

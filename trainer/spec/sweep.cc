@@ -30,14 +30,6 @@ ConfigNode Scalar(const std::string& s, const Location& loc) {
   return n;
 }
 
-std::string Shortest(double x) {
-  char buf[64];
-  for (int p = 1; p <= 17; ++p) {
-    std::snprintf(buf, sizeof(buf), "%.*g", p, x);
-    if (std::strtod(buf, nullptr) == x) break;
-  }
-  return buf;
-}
 
 // Value text for a job name: numbers in their shortest form (0.0 -> 0), lists in flow style.
 std::string NameText(const ConfigNode& v) {
@@ -207,10 +199,10 @@ absl::StatusOr<std::vector<Axis>> ReadAxes(const ConfigNode& sweep, std::vector<
             double x;
             if (kind == "between") {
               x = b->first + u * (b->second - b->first);
-              value = Scalar(Shortest(x), arg.loc);
+              value = Scalar(FormatDouble(x), arg.loc);
             } else if (kind == "log_between") {
               x = std::exp(std::log(b->first) + u * (std::log(b->second) - std::log(b->first)));
-              value = Scalar(Shortest(x), arg.loc);
+              value = Scalar(FormatDouble(x), arg.loc);
             } else {
               const int64_t lo = static_cast<int64_t>(std::ceil(b->first));
               const int64_t hi = static_cast<int64_t>(std::floor(b->second));
