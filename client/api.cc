@@ -41,7 +41,7 @@ class GrpcApi : public Api {
     auto ctx = Context(connection_.call_timeout_ms);
     return stub_->CancelSweep(ctx.get(), req, response);
   }
-  grpc::Status GetMetrics(const std::string& job_id, std::vector<v1::MetricPoint>* points) override {
+  grpc::Status GetMetrics(const std::string& job_id, std::vector<v1::Point>* points) override {
     v1::GetMetricsRequest req;
     req.set_job_id(job_id);
     v1::GetMetricsResponse resp;

@@ -25,7 +25,7 @@ class Api {
   virtual grpc::Status CancelJob(const std::string& job_id, const std::string& reason, v1::Job* job) = 0;
   virtual grpc::Status CancelSweep(const std::string& sweep_id, const std::string& reason,
                                    v1::CancelSweepResponse* response) = 0;
-  virtual grpc::Status GetMetrics(const std::string& job_id, std::vector<v1::MetricPoint>* points) = 0;
+  virtual grpc::Status GetMetrics(const std::string& job_id, std::vector<v1::Point>* points) = 0;
   // Streams: `on_event` is called for every event in order until the stream ends (OK) or it
   // returns false (the call is then cancelled and the result is OK). `timeout_ms` > 0 bounds the
   // whole stream (DEADLINE_EXCEEDED); 0 means no bound.

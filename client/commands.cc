@@ -12,9 +12,9 @@
 #include "client/render.h"
 #include "proto/sha256.h"
 #include "client/stats.h"
-#include "trainer/spec/spec.h"
-#include "trainer/spec/suggest.h"
-#include "trainer/spec/sweep.h"
+#include "configs/reader/spec.h"
+#include "configs/reader/suggest.h"
+#include "configs/reader/sweep.h"
 
 namespace graft::client {
 namespace {
@@ -309,15 +309,15 @@ void FlattenMetrics(const std::string& prefix, const json& value, std::vector<st
 int CheckCommand(const CheckArgs& args, Io& io) {
   std::string text;
   if (!ReadFileText(args.file, &text, io.err)) return kExitFailure;
-  auto plan = spec::PlanFromText(text, args.file, args.overrides, args.max_sweep_jobs);
+  auto plan = config::PlanFromText(text, args.file, args.overrides, args.max_sweep_jobs);
   if (!plan.ok()) {
     io.err << plan.status().message() << "\n";
     return kExitInvalidConfig;
   }
   if (plan->is_sweep) {
-    io.out << spec::SummarizePlan(*plan);
+    io.out << config::SummarizePlan(*plan);
   } else {
-    io.out << spec::Summarize(plan->jobs.front().job);
+    io.out << config::Summarize(plan->jobs.front().job);
   }
   return kExitOk;
 }
@@ -333,7 +333,7 @@ int SubmitCommand(Api& api, const SubmitArgs& args, Io& io) {
   }
   // Validate locally first (the server's own library): a bad config needs no round trip. A sweep
   // above the default limit is left to the server, whose limit may be higher.
-  auto plan = spec::PlanFromText(text, args.file, args.overrides, 1000);
+  auto plan = config::PlanFromText(text, args.file, args.overrides, 1000);
   if (!plan.ok() && !absl::IsResourceExhausted(plan.status())) {
     io.err << plan.status().message() << "\n";
     return kExitInvalidConfig;
@@ -376,7 +376,7 @@ int ListCommand(Api& api, const ListArgs& args, Io& io) {
   if (!args.state.empty()) {
     auto st = ParseStateName(args.state);
     if (!st) {
-      const std::string near = spec::Nearest(args.state, {"queued", "running", "succeeded", "failed", "cancelled"});
+      const std::string near = config::Nearest(args.state, {"queued", "running", "succeeded", "failed", "cancelled"});
       io.err << "graft: --state '" << args.state << "': expected queued | running | succeeded | failed | cancelled"
              << (near.empty() ? "" : "; did you mean '" + near + "'?") << "\n";
       return kExitUsage;
@@ -424,8 +424,8 @@ int ListCommand(Api& api, const ListArgs& args, Io& io) {
   for (const auto& job : jobs) {
     std::string iia = "-";
     if (job.has_latest()) {
-      json m = json::parse(job.latest().metrics_json(), nullptr, false);
-      if (auto v = AccuracyValue(m, "iia_test")) iia = Number(*v);
+      json m = ParseMetrics(job.latest().metrics_json());
+      if (auto v = AccuracyValue(m, "iia_held_out")) iia = Number(*v);
     }
     rows.push_back({job.id(), job.name(), StateName(job.state()), ProgressBar(job.step(), job.total_steps(), 10),
                     std::to_string(job.step()) + "/" + std::to_string(job.total_steps()), iia, Elapsed(job, now)});
@@ -474,20 +474,20 @@ int ShowCommand(Api& api, const ShowArgs& args, Io& io) {
   if (!job.worker_id().empty() && job.state() == v1::JOB_STATE_RUNNING) rows.push_back({"worker", job.worker_id()});
   for (const auto& [k, v] : rows) o << "  " << k << std::string(12 - k.size(), ' ') << v << "\n";
   if (job.has_latest()) {
-    json m = json::parse(job.latest().metrics_json(), nullptr, false);
+    json m = ParseMetrics(job.latest().metrics_json());
     o << "latest evaluation (step " << job.latest().step() << ", attempt " << job.latest().attempt() << ")\n";
     std::vector<std::pair<std::string, std::string>> acc = {
-        {"task accuracy, held out (acc_test)", AccuracyText(m, "acc_test")},
+        {"task accuracy, held out (acc_held_out)", AccuracyText(m, "acc_held_out")},
         {"task accuracy, training (acc_train)", AccuracyText(m, "acc_train")},
-        {"IIA, held out (iia_test)", AccuracyText(m, "iia_test")},
-        {"IIA, changed cases (iia_changed_test)", AccuracyText(m, "iia_changed_test")}};
+        {"IIA, held out (iia_held_out)", AccuracyText(m, "iia_held_out")},
+        {"IIA, changed cases (iia_changed_held_out)", AccuracyText(m, "iia_changed_held_out")}};
     if (m.contains("iia_by_set") && m["iia_by_set"].is_object()) {
       for (const auto& [name, v] : m["iia_by_set"].items()) {
         acc.push_back({"IIA, set " + name, AccuracyText(m["iia_by_set"], name)});
       }
     }
-    if (m.contains("unchanged_fraction") && m["unchanged_fraction"].is_number()) {
-      acc.push_back({"unchanged fraction", Number(m["unchanged_fraction"].get<double>())});
+    if (m.contains("unchanged_floor") && m["unchanged_floor"].is_number()) {
+      acc.push_back({"unchanged floor (unchanged_floor)", Number(m["unchanged_floor"].get<double>())});
     }
     size_t w = 0;
     for (const auto& [k, v] : acc) w = std::max(w, k.size());
@@ -547,12 +547,12 @@ int MetricsCommand(Api& api, const MetricsArgs& args, Io& io) {
     io.err << "graft: --format '" << args.format << "': expected csv or jsonl\n";
     return kExitUsage;
   }
-  std::vector<v1::MetricPoint> points;
+  std::vector<v1::Point> points;
   grpc::Status s = api.GetMetrics(t.id, &points);
   if (!s.ok()) return Report(s, "metrics", io);
   if (args.format == "jsonl") {
     for (const auto& p : points) {
-      json m = json::parse(p.metrics_json(), nullptr, false);
+      json m = ParseMetrics(p.metrics_json());
       if (!m.is_object()) m = json::object();
       // The stored object, with the attempt that produced it and the step it is stored under.
       m["step"] = p.step();
@@ -567,7 +567,7 @@ int MetricsCommand(Api& api, const MetricsArgs& args, Io& io) {
   std::vector<std::map<std::string, std::string>> rows;
   for (const auto& p : points) {
     std::vector<std::pair<std::string, std::string>> flat;
-    json m = json::parse(p.metrics_json(), nullptr, false);
+    json m = ParseMetrics(p.metrics_json());
     if (m.is_object()) FlattenMetrics("", m, &flat);
     std::map<std::string, std::string> row;
     for (const auto& [k, v] : flat) {
@@ -704,7 +704,7 @@ int CompareCommand(Api& api, const CompareArgs& args, Io& io) {
     v1::Job job;
     s = api.GetJob(listed.id(), &job);
     if (!s.ok()) return Report(s, "compare", io);
-    json r = json::parse(job.result_json(), nullptr, false);
+    json r = ParseMetrics(job.result_json());
     const std::string setting = SettingOf(job.name());
     if (!index.count(setting)) {
       index[setting] = groups.size();
@@ -712,8 +712,8 @@ int CompareCommand(Api& api, const CompareArgs& args, Io& io) {
     }
     Group& g = groups[index[setting]];
     g.ids.push_back(job.id());
-    if (auto v = AccuracyValue(r, "acc_test")) g.acc.push_back(*v);
-    if (auto v = AccuracyValue(r, "iia_changed_test")) g.iia.push_back(*v);
+    if (auto v = AccuracyValue(r, "acc_held_out")) g.acc.push_back(*v);
+    if (auto v = AccuracyValue(r, "iia_changed_held_out")) g.iia.push_back(*v);
   }
   auto stat_json = [](const MeanInterval& m) {
     json j{{"n", m.n}, {"mean", m.n > 0 ? json(m.mean) : json(nullptr)}, {"sd", m.n > 1 ? json(m.sd) : json(nullptr)},
@@ -732,16 +732,16 @@ int CompareCommand(Api& api, const CompareArgs& args, Io& io) {
       out["settings"].push_back({{"setting", g.setting},
                                  {"seeds", g.ids.size()},
                                  {"job_ids", g.ids},
-                                 {"acc_test", stat_json(MeanWithInterval(g.acc))},
-                                 {"iia_changed_test", stat_json(MeanWithInterval(g.iia))}});
+                                 {"acc_held_out", stat_json(MeanWithInterval(g.acc))},
+                                 {"iia_changed_held_out", stat_json(MeanWithInterval(g.iia))}});
     }
     for (const auto& j : left_out) out["left_out"].push_back({{"id", j.id()}, {"name", j.name()}, {"state", StateName(j.state())}});
     io.out << out.dump(2) << "\n";
     return kExitOk;
   }
   if (args.format == "csv") {
-    io.out << "setting,seeds,acc_test_mean,acc_test_sd,acc_test_lo,acc_test_hi,iia_changed_test_mean,"
-              "iia_changed_test_sd,iia_changed_test_lo,iia_changed_test_hi\n";
+    io.out << "setting,seeds,acc_held_out_mean,acc_held_out_sd,acc_held_out_lo,acc_held_out_hi,iia_changed_held_out_mean,"
+              "iia_changed_held_out_sd,iia_changed_held_out_lo,iia_changed_held_out_hi\n";
     auto cells = [](const MeanInterval& m) {
       auto num = [](double v) {
         char buf[32];
@@ -765,7 +765,7 @@ int CompareCommand(Api& api, const CompareArgs& args, Io& io) {
       rows.push_back({g.setting, std::to_string(g.ids.size()), stat_text(MeanWithInterval(g.acc)),
                       stat_text(MeanWithInterval(g.iia))});
     }
-    io.out << RenderTable({"SETTING", "SEEDS", "TASK ACCURACY (acc_test)", "CHANGED-CASE IIA (iia_changed_test)"}, rows);
+    io.out << RenderTable({"SETTING", "SEEDS", "TASK ACCURACY (acc_held_out)", "CHANGED-CASE IIA (iia_changed_held_out)"}, rows);
     io.out << "mean over seeds of each job's final held-out value; [95% interval: mean +- t(0.975, n-1) * sd / sqrt(n)]\n";
   }
   if (!left_out.empty()) {

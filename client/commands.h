@@ -121,7 +121,7 @@ bool ParseTarget(const std::string& text, bool allow_sweep, Target* target, std:
 // The setting a sweep job belongs to: its name without a trailing "/seed=N" segment.
 std::string SettingOf(const std::string& job_name);
 
-// Flattens a metrics object into dotted columns ("acc_test.value", "iia_by_set.local.lo", ...),
+// Flattens a metrics object into dotted columns ("acc_held_out.value", "iia_by_set.local.lo", ...),
 // scalars as JSON text (strings unquoted, null empty), in the object's key order.
 void FlattenMetrics(const std::string& prefix, const nlohmann::ordered_json& value,
                     std::vector<std::pair<std::string, std::string>>* out);

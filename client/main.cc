@@ -11,7 +11,7 @@
 #include "CLI/CLI.hpp"
 #include "client/commands.h"
 #include "client/settings.h"
-#include "trainer/spec/suggest.h"
+#include "configs/reader/suggest.h"
 
 namespace {
 
@@ -43,7 +43,7 @@ int main(int argc, char** argv) {
   const std::string word = CommandWord(argc, argv);
   const auto& names = CommandNames();
   if (!word.empty() && std::find(names.begin(), names.end(), word) == names.end()) {
-    const std::string near = graft::spec::Nearest(word, names);
+    const std::string near = graft::config::Nearest(word, names);
     std::cerr << "graft: unknown command '" << word << "'" << (near.empty() ? "" : "; did you mean '" + near + "'?")
               << "\n  `graft --help` lists the commands\n";
     return kExitUsage;

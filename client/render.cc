@@ -32,8 +32,34 @@ std::string Fixed(double v, int digits = 3) {
 
 json ParseOrNull(const std::string& text) {
   if (text.empty()) return nullptr;
-  json j = json::parse(text, nullptr, false);
+  json j = ParseMetrics(text);
   return j.is_discarded() ? json(text) : j;
+}
+
+void UpgradeNames(json* j) {
+  static const std::pair<const char*, const char*> kLegacy[] = {
+      {"acc_test", "acc_held_out"},         {"iia_test", "iia_held_out"},
+      {"iia_changed_test", "iia_changed_held_out"}, {"unchanged_fraction", "unchanged_floor"},
+      {"iia_step0", "control_untrained_network"}};
+  if (j->is_array()) {
+    for (auto& e : *j) UpgradeNames(&e);
+    return;
+  }
+  if (!j->is_object()) return;
+  bool legacy = false;
+  for (const auto& [old_name, name] : kLegacy) legacy = legacy || (j->contains(old_name) && !j->contains(name));
+  if (legacy) {
+    json renamed = json::object();  // keeps the stored order of the keys
+    for (auto& [k, v] : j->items()) {
+      std::string key = k;
+      for (const auto& [old_name, name] : kLegacy) {
+        if (k == old_name && !j->contains(name)) key = name;
+      }
+      renamed[key] = std::move(v);
+    }
+    *j = std::move(renamed);
+  }
+  for (auto& [k, v] : j->items()) UpgradeNames(&v);
 }
 
 // The curves a job view draws: task accuracy first, then one per intervention set.
@@ -47,13 +73,13 @@ struct Series {
 std::vector<Series> CurvesOf(const JobView& view) {
   static const char kGlyphs[] = "o+x%@&=~";
   std::vector<Series> out;
-  Series task{"task accuracy (acc_test)", '#', {}, "-"};
+  Series task{"task accuracy (acc_held_out)", '#', {}, "-"};
   std::map<std::string, Series> sets;
   std::vector<std::string> set_order;
   for (const auto& [step, p] : view.points()) {
-    if (auto v = AccuracyValue(p.metrics, "acc_test")) {
+    if (auto v = AccuracyValue(p.metrics, "acc_held_out")) {
       task.points.emplace_back(step, *v);
-      task.latest = AccuracyText(p.metrics, "acc_test");
+      task.latest = AccuracyText(p.metrics, "acc_held_out");
     }
     if (p.metrics.contains("iia_by_set") && p.metrics["iia_by_set"].is_object()) {
       for (const auto& [name, acc] : p.metrics["iia_by_set"].items()) {
@@ -175,6 +201,12 @@ std::string RenderTable(const std::vector<std::string>& header, const std::vecto
   return o.str();
 }
 
+json ParseMetrics(const std::string& text) {
+  json j = json::parse(text, nullptr, false);
+  if (!j.is_discarded()) UpgradeNames(&j);
+  return j;
+}
+
 std::optional<double> AccuracyValue(const json& metrics, const std::string& key) {
   if (!metrics.is_object() || !metrics.contains(key)) return std::nullopt;
   const json& a = metrics[key];
@@ -221,7 +253,7 @@ json JobToJson(const v1::Job& job, bool with_texts) {
   return j;
 }
 
-json PointToJson(const v1::MetricPoint& point) {
+json PointToJson(const v1::Point& point) {
   return json{{"step", point.step()}, {"attempt", point.attempt()}, {"metrics", ParseOrNull(point.metrics_json())}};
 }
 
@@ -321,8 +353,8 @@ std::string RenderJobFrame(const JobView& view, int width, int64_t now_ms) {
   if (shared) o << "  * several curves in one cell\n";
   if (!view.points().empty()) {
     const auto& last = view.points().rbegin()->second.metrics;
-    o << "  at step " << view.points().rbegin()->first << ": iia_test " << AccuracyText(last, "iia_test")
-      << ", iia_changed_test " << AccuracyText(last, "iia_changed_test") << "\n";
+    o << "  at step " << view.points().rbegin()->first << ": iia_held_out " << AccuracyText(last, "iia_held_out")
+      << ", iia_changed_held_out " << AccuracyText(last, "iia_changed_held_out") << "\n";
   } else {
     o << "  no evaluations yet\n";
   }
@@ -338,9 +370,9 @@ std::string RenderJobLine(const JobView& view, const v1::JobEvent& event) {
     if (!job.error().empty() && IsFinal(job.state())) o << ": " << job.error();
   } else if (event.has_point()) {
     const json& m = view.points().at(event.point().step()).metrics;
-    o << job.id() << " step " << event.point().step() << "/" << job.total_steps() << " acc_test "
-      << AccuracyText(m, "acc_test") << " iia_test " << AccuracyText(m, "iia_test") << " iia_changed_test "
-      << AccuracyText(m, "iia_changed_test");
+    o << job.id() << " step " << event.point().step() << "/" << job.total_steps() << " acc_held_out "
+      << AccuracyText(m, "acc_held_out") << " iia_held_out " << AccuracyText(m, "iia_held_out") << " iia_changed_held_out "
+      << AccuracyText(m, "iia_changed_held_out");
     if (m.contains("iia_by_set") && m["iia_by_set"].is_object()) {
       for (const auto& [name, acc] : m["iia_by_set"].items()) {
         if (auto v = AccuracyValue(m["iia_by_set"], name)) o << " " << name << " " << Fixed(*v);
@@ -386,7 +418,7 @@ std::string RenderSweepFrame(const SweepView& view, int width, int max_rows, int
     std::vector<double> trend;
     std::string latest = "-";
     for (const auto& [step, p] : jv.points()) {
-      if (auto v = AccuracyValue(p.metrics, "iia_changed_test")) {
+      if (auto v = AccuracyValue(p.metrics, "iia_changed_held_out")) {
         trend.push_back(*v);
         latest = Fixed(*v);
       }
@@ -429,8 +461,8 @@ std::string RenderSweepLine(const SweepView& view, const v1::SweepEvent& event) 
     if (!j.error().empty() && IsFinal(j.state())) o << ": " << j.error();
   } else if (e.has_point()) {
     const json& m = jv.points().at(e.point().step()).metrics;
-    o << j.id() << " " << j.name() << " step " << e.point().step() << "/" << j.total_steps() << " acc_test "
-      << AccuracyText(m, "acc_test") << " iia_changed_test " << AccuracyText(m, "iia_changed_test");
+    o << j.id() << " " << j.name() << " step " << e.point().step() << "/" << j.total_steps() << " acc_held_out "
+      << AccuracyText(m, "acc_held_out") << " iia_changed_held_out " << AccuracyText(m, "iia_changed_held_out");
   } else if (e.has_rewind()) {
     o << j.id() << " " << j.name() << " rewind: attempt " << e.rewind().attempt() << " replaces the points from step "
       << e.rewind().from_step();

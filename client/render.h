@@ -34,6 +34,12 @@ std::string Elapsed(const v1::Job& job, int64_t now_ms);
 // Columns padded to their widest cell (UTF-8 aware), two spaces apart, header first.
 std::string RenderTable(const std::vector<std::string>& header, const std::vector<std::vector<std::string>>& rows);
 
+// Parses a point's or a result's JSON text (a discarded value when it is not JSON) and renames the
+// keys of runs made before graft's names settled (acc_test, iia_test, iia_changed_test,
+// unchanged_fraction, iia_step0) to today's (acc_held_out, iia_held_out, iia_changed_held_out,
+// unchanged_floor, control_untrained_network), at every depth, so older stored points read alike.
+nlohmann::ordered_json ParseMetrics(const std::string& text);
+
 // metrics[key]["value"] when it is a number.
 std::optional<double> AccuracyValue(const nlohmann::ordered_json& metrics, const std::string& key);
 // "0.983 [0.912, 1.000]" for an accuracy object, "-" when absent.
@@ -43,7 +49,7 @@ std::string AccuracyText(const nlohmann::ordered_json& metrics, const std::strin
 // and (with_texts) `spec_yaml` and `result` (parsed result.json) when present.
 nlohmann::ordered_json JobToJson(const v1::Job& job, bool with_texts);
 // A point: {"step", "attempt", "metrics": {...}}.
-nlohmann::ordered_json PointToJson(const v1::MetricPoint& point);
+nlohmann::ordered_json PointToJson(const v1::Point& point);
 // One line of `watch --json`: {"type": "state"|"point"|"rewind", "job_id", ...}.
 nlohmann::ordered_json EventToJson(const std::string& job_id, const v1::JobEvent& event);
 
@@ -68,7 +74,7 @@ class JobView {
   int points_received_ = 0;
 };
 
-// The live curves of one job: task accuracy (acc_test) and IIA of each intervention set
+// The live curves of one job: task accuracy (acc_held_out) and IIA of each intervention set
 // (iia_by_set) against steps, y from 0 to 1, x from 0 to the job's total steps, with a legend
 // holding the latest values. `width` is the terminal's width in columns.
 std::string RenderJobFrame(const JobView& view, int width, int64_t now_ms);
@@ -89,7 +95,7 @@ class SweepView {
   std::map<std::string, JobView> jobs_;
 };
 
-// One line per job (id, name, state, progress bar, steps, a sparkline of iia_changed_test over
+// One line per job (id, name, state, progress bar, steps, a sparkline of iia_changed_held_out over
 // its points and its latest value) and a footer with counts by state; at most `max_rows` job
 // lines (the rest are counted).
 std::string RenderSweepFrame(const SweepView& view, int width, int max_rows, int64_t now_ms);

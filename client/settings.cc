@@ -6,8 +6,8 @@
 
 #include "absl/status/status.h"
 #include "absl/strings/str_cat.h"
-#include "trainer/spec/config_tree.h"
-#include "trainer/spec/suggest.h"
+#include "configs/reader/config_tree.h"
+#include "configs/reader/suggest.h"
 
 namespace graft::client {
 namespace {
@@ -43,7 +43,7 @@ absl::StatusOr<FileSettings> ReadConfigFile(const std::string& path, bool must_e
     if (must_exist) return absl::NotFoundError(absl::StrCat("GRAFT_CONFIG names '", path, "', which does not exist"));
     return out;
   }
-  auto tree = spec::ParseYamlFile(path);
+  auto tree = config::ParseYamlFile(path);
   if (!tree.ok()) return tree.status();
   if (tree->IsNull()) return out;
   if (!tree->IsMap()) {
@@ -51,11 +51,11 @@ absl::StatusOr<FileSettings> ReadConfigFile(const std::string& path, bool must_e
         absl::StrCat(tree->loc.ToString(), ": expected a map with server, token or token_file, got ", tree->Describe()));
   }
   const std::vector<std::string> keys = {"server", "token", "token_file"};
-  const spec::ConfigNode* token_node = nullptr;
-  const spec::ConfigNode* token_file_node = nullptr;
+  const config::ConfigNode* token_node = nullptr;
+  const config::ConfigNode* token_file_node = nullptr;
   for (const auto& [k, v] : tree->entries) {
     if (std::find(keys.begin(), keys.end(), k.scalar) == keys.end()) {
-      const std::string near = spec::Nearest(k.scalar, keys);
+      const std::string near = config::Nearest(k.scalar, keys);
       return absl::InvalidArgumentError(absl::StrCat(k.loc.ToString(), ": unknown key '", k.scalar,
                                                      "' in the client config",
                                                      near.empty() ? "; valid keys: server, token, token_file"

@@ -40,7 +40,7 @@ chmod 600 "$out"/*.token
 
 echo "== starting graftd (data dir $out/data)"
 build/bin/graftd --config configs/graftd.yaml --listen 127.0.0.1:0 --port-file "$out/port" \
-  --data-dir "$out/data" --tokens "$out/tokens.yaml" > "$out/graftd.log" 2>&1 &
+  --data-dir "$out/data" --tokens-file "$out/tokens.yaml" > "$out/graftd.log" 2>&1 &
 pids+=($!)
 for _ in $(seq 1 100); do [[ -s "$out/port" ]] && break; sleep 0.1; done
 [[ -s "$out/port" ]] || { echo "demo: graftd did not start; see $out/graftd.log"; exit 1; }

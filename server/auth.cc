@@ -5,7 +5,7 @@
 #include "absl/status/status.h"
 #include "absl/strings/str_cat.h"
 #include "proto/sha256.h"
-#include "trainer/spec/config_tree.h"
+#include "configs/reader/config_tree.h"
 
 namespace graft::server {
 
@@ -19,7 +19,7 @@ const char* ToString(Role r) {
 }
 
 absl::StatusOr<TokenTable> TokenTable::Parse(const std::string& yaml, const std::string& source) {
-  auto tree = spec::ParseYaml(yaml, source);
+  auto tree = config::ParseYaml(yaml, source);
   if (!tree.ok()) return tree.status();
   TokenTable table;
   if (tree->IsNull()) return table;
@@ -28,9 +28,9 @@ absl::StatusOr<TokenTable> TokenTable::Parse(const std::string& yaml, const std:
         absl::StrCat(tree->loc.ToString(), ": expected a list of {name, role, sha256} entries"));
   }
   for (const auto& entry : tree->items) {
-    const spec::ConfigNode* name = entry.IsMap() ? entry.Find("name") : nullptr;
-    const spec::ConfigNode* role = entry.IsMap() ? entry.Find("role") : nullptr;
-    const spec::ConfigNode* hash = entry.IsMap() ? entry.Find("sha256") : nullptr;
+    const config::ConfigNode* name = entry.IsMap() ? entry.Find("name") : nullptr;
+    const config::ConfigNode* role = entry.IsMap() ? entry.Find("role") : nullptr;
+    const config::ConfigNode* hash = entry.IsMap() ? entry.Find("sha256") : nullptr;
     if (!name || !role || !hash || !name->IsScalar() || !role->IsScalar() || !hash->IsScalar()) {
       return absl::InvalidArgumentError(
           absl::StrCat(entry.loc.ToString(), ": each entry needs name, role and sha256"));
@@ -66,9 +66,9 @@ absl::StatusOr<TokenTable> TokenTable::Parse(const std::string& yaml, const std:
 }
 
 absl::StatusOr<TokenTable> TokenTable::Load(const std::string& path) {
-  auto tree = spec::ParseYamlFile(path);
+  auto tree = config::ParseYamlFile(path);
   if (!tree.ok()) return tree.status();
-  return Parse(spec::ToYaml(*tree), path);
+  return Parse(config::ToYaml(*tree), path);
 }
 
 std::optional<Principal> TokenTable::Lookup(const std::string& token) const {

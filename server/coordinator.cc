@@ -8,8 +8,8 @@
 #include "absl/status/status.h"
 #include "absl/strings/str_cat.h"
 #include "spdlog/spdlog.h"
-#include "trainer/spec/spec.h"
-#include "trainer/spec/sweep.h"
+#include "configs/reader/spec.h"
+#include "configs/reader/sweep.h"
 
 namespace graft::server {
 namespace {
@@ -34,8 +34,8 @@ bool IsArtifactName(const std::string& name) {
   return false;
 }
 
-v1::MetricPoint PointProto(const PointRecord& p) {
-  v1::MetricPoint m;
+v1::Point PointProto(const PointRecord& p) {
+  v1::Point m;
   m.set_step(p.step);
   m.set_attempt(p.attempt);
   m.set_metrics_json(p.metrics_json);
@@ -161,13 +161,13 @@ absl::StatusOr<v1::SubmitJobResponse> Coordinator::Submit(const Principal& who, 
   const std::string source = request.source_name().empty() ? "config.yaml" : request.source_name();
   std::vector<std::string> overrides(request.overrides().begin(), request.overrides().end());
   // The whole sweep is validated before anything is stored.
-  auto plan = spec::PlanFromText(request.config_yaml(), source, overrides, options_.max_sweep_jobs);
+  auto plan = config::PlanFromText(request.config_yaml(), source, overrides, options_.max_sweep_jobs);
   if (!plan.ok()) {
     if (absl::IsInvalidArgument(plan.status()) || absl::IsResourceExhausted(plan.status())) return plan.status();
     return absl::InvalidArgumentError(plan.status().message());
   }
   std::vector<JobRecord> records;
-  for (const spec::PlannedJob& p : plan->jobs) {
+  for (const config::PlannedJob& p : plan->jobs) {
     JobRecord r;
     r.name = p.name;
     r.owner = who.name;
@@ -177,7 +177,7 @@ absl::StatusOr<v1::SubmitJobResponse> Coordinator::Submit(const Principal& who, 
     r.max_attempts = options_.max_attempts;
     r.submitted_ms = clock_->NowMs();
     r.total_steps = p.job.spec.training.steps;
-    r.spec_yaml = spec::ResolvedSpecYaml(p.job.spec);
+    r.spec_yaml = config::ResolvedSpecYaml(p.job.spec);
     records.push_back(std::move(r));
   }
   Deferred deferred;
@@ -274,13 +274,13 @@ absl::StatusOr<v1::Job> Coordinator::Cancel(const Principal& who, const std::str
   return out;
 }
 
-absl::StatusOr<std::vector<v1::MetricPoint>> Coordinator::Metrics(const Principal& who, const std::string& job_id) {
+absl::StatusOr<std::vector<v1::Point>> Coordinator::Metrics(const Principal& who, const std::string& job_id) {
   std::lock_guard<std::mutex> lock(mu_);
   auto job = LoadVisible(who, job_id);
   if (!job.ok()) return job.status();
   auto points = store_->Points(job->id, 0);
   if (!points.ok()) return points.status();
-  std::vector<v1::MetricPoint> out;
+  std::vector<v1::Point> out;
   for (const auto& p : *points) {
     out.push_back(PointProto(p));
   }

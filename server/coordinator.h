@@ -1,5 +1,5 @@
 // The coordinator's logic, independent of gRPC: submitting and validating jobs, the queue and
-// its leases (long polls, expiry, attempts, hand-backs), metric points and their watchers,
+// its leases (long polls, expiry, attempts, hand-backs), points and their watchers,
 // artifacts in the data dir, and who may see what. The gRPC services in services.h are thin
 // adapters over it. Thread-safety: every public method is safe to call from any thread; one
 // mutex serialises state changes, and callbacks (watch events, lease replies) are invoked
@@ -86,7 +86,7 @@ class Coordinator {
   // user's) sweep.
   absl::StatusOr<v1::CancelSweepResponse> CancelSweep(const Principal& who, const std::string& sweep_id,
                                                       const std::string& reason);
-  absl::StatusOr<std::vector<v1::MetricPoint>> Metrics(const Principal& who, const std::string& job_id);
+  absl::StatusOr<std::vector<v1::Point>> Metrics(const Principal& who, const std::string& job_id);
   // The stored artifact's record (its bytes are in record.path).
   absl::StatusOr<ArtifactRecord> Artifact(const Principal& who, const std::string& job_id, const std::string& name);
   absl::StatusOr<v1::ServerInfo> Info();

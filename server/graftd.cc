@@ -24,7 +24,7 @@ int RunGraftd(const GraftdConfig& config, const std::atomic<bool>* stop) {
     return 2;
   }
   if (config.tokens_file.empty()) {
-    log->error("no tokens file: pass --tokens FILE (a YAML list of {{name, role, sha256}})");
+    log->error("no tokens file: pass --tokens-file FILE (a YAML list of {{name, role, sha256}})");
     return 2;
   }
   auto tokens = TokenTable::Load(config.tokens_file);

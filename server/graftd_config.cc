@@ -6,12 +6,12 @@
 #include "absl/status/status.h"
 #include "absl/strings/str_cat.h"
 #include "absl/strings/str_join.h"
-#include "trainer/spec/config_tree.h"
+#include "configs/reader/config_tree.h"
 
 namespace graft::server {
 
 absl::Status LoadGraftdConfig(const std::string& path, GraftdConfig* config) {
-  auto tree = spec::ParseYamlFile(path);
+  auto tree = config::ParseYamlFile(path);
   if (!tree.ok()) return tree.status();
   if (tree->IsNull()) return absl::OkStatus();
   if (!tree->IsMap()) return absl::InvalidArgumentError(absl::StrCat(tree->loc.ToString(), ": expected a map of settings"));
@@ -19,7 +19,7 @@ absl::Status LoadGraftdConfig(const std::string& path, GraftdConfig* config) {
                                          "max_attempts", "max_config_bytes", "durability",  "allow_plaintext",
                                          "max_sweep_jobs"};
   std::vector<std::string> errors;
-  auto whole = [&](const spec::ConfigNode& v, const std::string& key, int64_t lo, int64_t hi, int64_t* out) {
+  auto whole = [&](const config::ConfigNode& v, const std::string& key, int64_t lo, int64_t hi, int64_t* out) {
     char* end = nullptr;
     long long x = v.IsScalar() ? std::strtoll(v.scalar.c_str(), &end, 10) : 0;
     if (!v.IsScalar() || v.scalar.empty() || *end != '\0' || x < lo || x > hi) {

@@ -1,4 +1,4 @@
-// The coordinator's durable state: jobs, their metric points, artifacts and workers. One seam
+// The coordinator's durable state: jobs, their points, artifacts and workers. One seam
 // (JobStore) with an SQLite implementation (SqliteJobStore, WAL mode) for graftd and tests.
 // Thread-safety: every method of a JobStore may be called from any thread; implementations
 // serialise access internally. Each method is one transaction: it happens completely or not

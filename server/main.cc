@@ -20,7 +20,7 @@ int main(int argc, char** argv) {
   app.add_option("--config", config_file, "YAML settings file (e.g. configs/graftd.yaml)");
   app.add_option("--listen", listen, "host:port to listen on (default 127.0.0.1:7070; port 0 picks one)");
   app.add_option("--data-dir", data_dir, "database and artifacts (default ./var/graft; a local disk)");
-  app.add_option("--tokens", tokens, "tokens file: YAML list of {name, role, sha256}");
+  app.add_option("--tokens-file", tokens, "tokens file: YAML list of {name, role, sha256}");
   app.add_option("--lease-seconds", lease_seconds, "a worker must report within this many seconds (default 30)");
   app.add_option("--max-attempts", max_attempts, "leases per job before it fails (default 3)");
   app.add_option("--max-config-bytes", max_config_bytes, "largest config accepted (default 1048576)");

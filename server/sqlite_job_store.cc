@@ -27,7 +27,7 @@ namespace {
 // Schema steps, oldest first. Step i (0-based) takes the database from user_version i to
 // i + 1. Append new steps; never edit a released one.
 constexpr const char* kMigrations[] = {
-    // Version 1: jobs, their metric points and artifacts, and workers.
+    // Version 1: jobs, their points and artifacts, and workers.
     R"sql(
 CREATE TABLE jobs (
   id               INTEGER PRIMARY KEY AUTOINCREMENT,

@@ -92,8 +92,8 @@ TEST_F(AnalysisTest, EvaluateReproducesTheTrainingRunsFinalMetrics) {
                       out.path());
   ASSERT_EQ(r.exit_code, 0) << r.output;
   json run = Json(aligned_ + "/result.json"), ev = Json(out.path() + "/evaluation.json");
-  for (const char* key : {"acc_train", "acc_test", "iia_test", "iia_changed_test", "iia_by_set", "unchanged_fraction",
-                          "iia_step0", "control_random_units", "confusion"}) {
+  for (const char* key : {"acc_train", "acc_held_out", "iia_held_out", "iia_changed_held_out", "iia_by_set", "unchanged_floor",
+                          "control_untrained_network", "control_random_units", "confusion"}) {
     ASSERT_TRUE(run.contains(key)) << key;
     EXPECT_EQ(run[key], ev[key]) << key;
   }
@@ -109,8 +109,8 @@ TEST_F(AnalysisTest, RunResultCarriesTheControls) {
   std::getline(metrics, first);
   json step0 = json::parse(first);
   ASSERT_EQ(step0["step"], 0);
-  EXPECT_EQ(res["iia_step0"]["iia_test"], step0["iia_test"]);
-  EXPECT_EQ(res["iia_step0"]["iia_changed_test"], step0["iia_changed_test"]);
+  EXPECT_EQ(res["control_untrained_network"]["iia_held_out"], step0["iia_held_out"]);
+  EXPECT_EQ(res["control_untrained_network"]["iia_changed_held_out"], step0["iia_changed_held_out"]);
   // Random units: as many as the real site, in the same layer, none of the real units.
   const json& sites = res["control_random_units"]["sites"];
   std::set<int> real;
@@ -122,8 +122,8 @@ TEST_F(AnalysisTest, RunResultCarriesTheControls) {
   }
   // The IIT network ignores its unaligned units, so swapping them changes nothing: the control
   // scores the unchanged floor overall and 0 on changed cases, far below the real alignment.
-  EXPECT_EQ(res["control_random_units"]["iia_changed_test"]["correct"], 0);
-  EXPECT_GE(res["iia_changed_test"]["value"].get<double>(), 0.98);
+  EXPECT_EQ(res["control_random_units"]["iia_changed_held_out"]["correct"], 0);
+  EXPECT_GE(res["iia_changed_held_out"]["value"].get<double>(), 0.98);
   // The confusion table: per set, rows sum to the set's triples, the diagonal to its correct ones.
   const json& conf = res["confusion"];
   EXPECT_EQ(conf["classes"], json({"van", "truck", "bike", "courier"}));
@@ -160,7 +160,7 @@ TEST(Controls, FailuresAreCappedAt200AndNamedWithSymbols) {
                       " --set training.steps=200 --set training.loss_weights.interchange=0");
   ASSERT_EQ(r.exit_code, 0) << r.output;
   json res = Json(dir.path() + "/result.json");
-  ASSERT_GT(res["iia_test"]["n"].get<int64_t>() - res["iia_test"]["correct"].get<int64_t>(), 200);
+  ASSERT_GT(res["iia_held_out"]["n"].get<int64_t>() - res["iia_held_out"]["correct"].get<int64_t>(), 200);
   std::istringstream lines(ReadFile(dir.path() + "/failures.jsonl"));
   std::string line;
   int count = 0;
@@ -214,7 +214,7 @@ TEST_F(AnalysisTest, DasFindsTheAlignmentWhileTheUntrainedControlDoesNot) {
   auto guess = RunCommand(Worker() + " evaluate " + ParcelConfig() + " --weights " + moved_weights + " --out " +
                           out.path() + "/guess --set alignment.local.layer=2 --set alignment.careful.layer=2");
   ASSERT_EQ(guess.exit_code, 0) << guess.output;
-  EXPECT_LE(Json(out.path() + "/guess/evaluation.json")["iia_changed_test"]["value"].get<double>(), 0.5);
+  EXPECT_LE(Json(out.path() + "/guess/evaluation.json")["iia_changed_held_out"]["value"].get<double>(), 0.5);
 
   auto r = RunCommand(Worker() + " das " + ParcelConfig() + " --weights " + moved_weights + " --out " + out.path() +
                       kMoved + " --set das.steps=300");
@@ -223,10 +223,10 @@ TEST_F(AnalysisTest, DasFindsTheAlignmentWhileTheUntrainedControlDoesNot) {
   EXPECT_EQ(das["layer"], 2);
   const json& found = das["network"];
   const json& control = das["control_untrained_network"];
-  EXPECT_GE(found["iia_test"]["value"].get<double>(), 0.97) << found;
-  EXPECT_GE(found["iia_changed_test"]["value"].get<double>(), 0.95) << found;
-  EXPECT_LE(control["iia_changed_test"]["value"].get<double>(), 0.6) << control;
-  EXPECT_LT(control["iia_changed_test"]["hi"].get<double>(), found["iia_changed_test"]["lo"].get<double>());
+  EXPECT_GE(found["iia_held_out"]["value"].get<double>(), 0.97) << found;
+  EXPECT_GE(found["iia_changed_held_out"]["value"].get<double>(), 0.95) << found;
+  EXPECT_LE(control["iia_changed_held_out"]["value"].get<double>(), 0.6) << control;
+  EXPECT_LT(control["iia_changed_held_out"]["hi"].get<double>(), found["iia_changed_held_out"]["lo"].get<double>());
   auto py = RunCommand(Script("check_rotation.py") + " " + out.path() + "/rotation.pt --min-turn 0.1");
   EXPECT_EQ(py.exit_code, 0) << py.output;
   EXPECT_NE(py.output.find("checked 2 rotations"), std::string::npos) << py.output;
@@ -246,7 +246,7 @@ TEST_F(AnalysisTest, PythonSavedDictEvaluatesLikeTheGraftNetwork) {
                       out.path() + "/graft");
   ASSERT_EQ(b.exit_code, 0) << b.output;
   json ja = Json(out.path() + "/py/evaluation.json"), jb = Json(out.path() + "/graft/evaluation.json");
-  for (const char* key : {"acc_test", "iia_test", "iia_changed_test", "iia_by_set", "control_random_units"}) {
+  for (const char* key : {"acc_held_out", "iia_held_out", "iia_changed_held_out", "iia_by_set", "control_random_units"}) {
     EXPECT_EQ(ja[key], jb[key]) << key;
   }
 }

@@ -20,7 +20,7 @@
 #include "nlohmann/json.hpp"
 #include "tests/cluster.h"
 #include "tests/test_util.h"
-#include "trainer/spec/spec.h"
+#include "configs/reader/spec.h"
 
 namespace graft {
 namespace {
@@ -148,9 +148,9 @@ TEST(ClientSweep, ExpandsGridTogetherSampleAndSeedsIntoTheRightJobs) {
           v1::Job job = c.Get(id);
           EXPECT_EQ(job.sweep_id(), resp["sweep_id"]);
           EXPECT_EQ(job.total_steps(), 40);
-          auto loaded = spec::LoadJobFromText(job.spec_yaml(), id + "/spec.yaml", {});
+          auto loaded = config::LoadJobFromText(job.spec_yaml(), id + "/spec.yaml", {});
           ASSERT_TRUE(loaded.ok()) << loaded.status();
-          const spec::JobSpec& s = loaded->spec;
+          const config::JobSpec& s = loaded->spec;
           EXPECT_EQ(s.training.interchange_weight, interchange) << id;
           ASSERT_EQ(s.alignment.size(), 2u);
           EXPECT_EQ(s.alignment[0].layer, layer) << id;
@@ -334,7 +334,7 @@ TEST(ClientWatch, FromStepZeroAndFromAMiddleStepSeesEveryPointOnce) {
   ASSERT_EQ(a.code, 0) << a.err << c.Log() << ReadFile(worker->log_path());
   ASSERT_EQ(b.code, 0) << b.err;
   ASSERT_EQ(resumed.code, 0) << resumed.err;
-  const std::vector<v1::MetricPoint> stored = c.Metrics(id);
+  const std::vector<v1::Point> stored = c.Metrics(id);
   ASSERT_EQ(stored.size(), 21u);  // 0, 150, ..., 3000
   std::vector<int64_t> all, from_1500;
   for (const auto& p : stored) {
@@ -371,7 +371,7 @@ TEST(ClientWatch, FromStepZeroAndFromAMiddleStepSeesEveryPointOnce) {
   Ran tty = Call([&](client::Io& io) { return client::WatchCommand(*api, w, io); }, true);
   EXPECT_EQ(tty.code, 0);
   EXPECT_NE(tty.out.find("\x1b[J"), std::string::npos);
-  for (const char* s : {"accuracy", "1.00 |", "0.50 |", "0.00 |", "steps", "3000", "task accuracy (acc_test)",
+  for (const char* s : {"accuracy", "1.00 |", "0.50 |", "0.00 |", "steps", "3000", "task accuracy (acc_held_out)",
                         "IIA, set local (iia_by_set)", "IIA, set local+careful (iia_by_set)"}) {
     EXPECT_NE(tty.out.find(s), std::string::npos) << s << "\n" << tty.out;
   }
@@ -510,8 +510,8 @@ TEST(ClientCompare, MatchesAHandComputationAndMetricsParseBack) {
     const std::string name = job.name();
     const std::string setting = name.substr(0, name.rfind("/seed="));
     json r = json::parse(job.result_json());
-    acc[setting].push_back(r["acc_test"]["value"]);
-    iia[setting].push_back(r["iia_changed_test"]["value"]);
+    acc[setting].push_back(r["acc_held_out"]["value"]);
+    iia[setting].push_back(r["iia_changed_held_out"]["value"]);
     ++seeds[setting];
   }
   ASSERT_EQ(seeds.size(), 2u);
@@ -530,7 +530,7 @@ TEST(ClientCompare, MatchesAHandComputationAndMetricsParseBack) {
   for (const auto& s : out["settings"]) {
     const std::string setting = s["setting"];
     EXPECT_EQ(s["seeds"], 3);
-    for (const auto& [key, values] : {std::pair{"acc_test", acc[setting]}, std::pair{"iia_changed_test", iia[setting]}}) {
+    for (const auto& [key, values] : {std::pair{"acc_held_out", acc[setting]}, std::pair{"iia_changed_held_out", iia[setting]}}) {
       ASSERT_EQ(values.size(), 3u);
       const double mean = (values[0] + values[1] + values[2]) / 3;
       double ss = 0;
@@ -579,7 +579,7 @@ TEST(ClientCompare, MatchesAHandComputationAndMetricsParseBack) {
 
   // metrics: CSV and JSONL parse back to the stored points.
   const std::string id = json::parse(sub.out)["job_ids"][0];
-  const std::vector<v1::MetricPoint> stored = c.Metrics(id);
+  const std::vector<v1::Point> stored = c.Metrics(id);
   ASSERT_EQ(stored.size(), 3u);  // steps 0, 20, 40
   client::MetricsArgs ma;
   ma.id = id;
@@ -617,8 +617,8 @@ TEST(ClientCompare, MatchesAHandComputationAndMetricsParseBack) {
   ASSERT_GE(header.size(), 2u);
   EXPECT_EQ(header[0], "step");
   EXPECT_EQ(header[1], "attempt");
-  for (const char* col : {"acc_test.value", "acc_test.lo", "acc_test.hi", "acc_test.correct", "acc_test.n",
-                          "iia_changed_test.value", "iia_by_set.local.value", "iia_by_set.local+careful.hi"}) {
+  for (const char* col : {"acc_held_out.value", "acc_held_out.lo", "acc_held_out.hi", "acc_held_out.correct", "acc_held_out.n",
+                          "iia_changed_held_out.value", "iia_by_set.local.value", "iia_by_set.local+careful.hi"}) {
     EXPECT_NE(std::find(header.begin(), header.end(), col), header.end()) << col << " in " << lines[0];
   }
   for (size_t i = 0; i < stored.size(); ++i) {
@@ -683,7 +683,7 @@ TEST(ClientPython, AScriptSubmitsAJobAndPollsItToCompletion) {
   EXPECT_EQ(out["last_step"], 40);
   v1::Job job = c.Get(out["job_id"]);
   EXPECT_EQ(job.state(), v1::JOB_STATE_SUCCEEDED);
-  EXPECT_EQ(json::parse(job.result_json())["iia_test"]["value"], out["iia_test"]);
+  EXPECT_EQ(json::parse(job.result_json())["iia_held_out"]["value"], out["iia_held_out"]);
 }
 
 // ---------------------------------------------------------------------------------------------
@@ -817,7 +817,7 @@ v1::JobEvent PointEvent(int64_t step, int attempt, double acc) {
   e.mutable_point()->set_step(step);
   e.mutable_point()->set_attempt(attempt);
   e.mutable_point()->set_metrics_json(
-      json{{"step", step}, {"acc_test", {{"value", acc}, {"lo", acc - 0.1}, {"hi", acc}, {"correct", 1}, {"n", 1}}}}
+      json{{"step", step}, {"acc_held_out", {{"value", acc}, {"lo", acc - 0.1}, {"hi", acc}, {"correct", 1}, {"n", 1}}}}
           .dump());
   return e;
 }
@@ -842,9 +842,9 @@ TEST(ClientRender, RewindDropsThePointsFromItsStep) {
   for (const auto& [s, p] : view.points()) steps.push_back(s);
   EXPECT_EQ(steps, (std::vector<int64_t>{0, 20, 40, 60}));
   EXPECT_EQ(view.points().at(40).attempt, 2);
-  EXPECT_EQ(client::AccuracyValue(view.points().at(40).metrics, "acc_test"), 0.9);
+  EXPECT_EQ(client::AccuracyValue(view.points().at(40).metrics, "acc_held_out"), 0.9);
   const std::string frame = client::RenderJobFrame(view, 80, 0);
-  EXPECT_NE(frame.find("task accuracy (acc_test)  1.000 [0.900, 1.000]"), std::string::npos) << frame;
+  EXPECT_NE(frame.find("task accuracy (acc_held_out)  1.000 [0.900, 1.000]"), std::string::npos) << frame;
   // The top row (y = 1.00) holds the last point, at the right end of the x axis.
   std::istringstream in(frame);
   std::string line;
@@ -884,7 +884,7 @@ class FakeApi : public client::Api {
   grpc::Status ListJobs(const v1::ListJobsRequest&, v1::ListJobsResponse*) override { return Unused(); }
   grpc::Status CancelJob(const std::string&, const std::string&, v1::Job*) override { return Unused(); }
   grpc::Status CancelSweep(const std::string&, const std::string&, v1::CancelSweepResponse*) override { return Unused(); }
-  grpc::Status GetMetrics(const std::string&, std::vector<v1::MetricPoint>*) override { return Unused(); }
+  grpc::Status GetMetrics(const std::string&, std::vector<v1::Point>*) override { return Unused(); }
   grpc::Status WatchJob(const std::string&, int64_t, int64_t, const std::function<bool(const v1::JobEvent&)>&) override {
     return Unused();
   }
@@ -955,7 +955,7 @@ class HandSweepApi : public FakeApi {
     j.set_state(state);
     j.set_sweep_id("s-1");
     if (state == v1::JOB_STATE_SUCCEEDED) {
-      j.set_result_json(json{{"acc_test", {{"value", acc}}}, {"iia_changed_test", {{"value", iia}}}}.dump());
+      j.set_result_json(json{{"acc_held_out", {{"value", acc}}}, {"iia_changed_held_out", {{"value", iia}}}}.dump());
     }
     jobs_.push_back(j);
   }
@@ -978,19 +978,19 @@ TEST(ClientCompare, HandComputedSettingsWithOneSeedAndALeftOutJob) {
   EXPECT_EQ(a["setting"], "routing/width=8");
   EXPECT_EQ(a["seeds"], 3);
   EXPECT_EQ(a["job_ids"], json({"j-1", "j-2", "j-3"}));
-  EXPECT_NEAR(a["acc_test"]["mean"].get<double>(), 0.9, 1e-12);
-  EXPECT_NEAR(a["acc_test"]["lo"].get<double>(), 0.9 - 0.2484137712, 1e-9);
-  EXPECT_NEAR(a["acc_test"]["hi"].get<double>(), 0.9 + 0.2484137712, 1e-9);
-  EXPECT_NEAR(a["iia_changed_test"]["mean"].get<double>(), 0.6, 1e-12);
-  EXPECT_NEAR(a["iia_changed_test"]["sd"].get<double>(), 0.1, 1e-12);
-  EXPECT_NEAR(a["iia_changed_test"]["hi"].get<double>(), 0.6 + 0.2484137712, 1e-9);
+  EXPECT_NEAR(a["acc_held_out"]["mean"].get<double>(), 0.9, 1e-12);
+  EXPECT_NEAR(a["acc_held_out"]["lo"].get<double>(), 0.9 - 0.2484137712, 1e-9);
+  EXPECT_NEAR(a["acc_held_out"]["hi"].get<double>(), 0.9 + 0.2484137712, 1e-9);
+  EXPECT_NEAR(a["iia_changed_held_out"]["mean"].get<double>(), 0.6, 1e-12);
+  EXPECT_NEAR(a["iia_changed_held_out"]["sd"].get<double>(), 0.1, 1e-12);
+  EXPECT_NEAR(a["iia_changed_held_out"]["hi"].get<double>(), 0.6 + 0.2484137712, 1e-9);
   // width=16: one succeeded seed, no interval; the failed seed is left out.
   const json& b = out["settings"][1];
   EXPECT_EQ(b["setting"], "routing/width=16");
   EXPECT_EQ(b["seeds"], 1);
-  EXPECT_EQ(b["acc_test"]["mean"], 0.75);
-  EXPECT_TRUE(b["acc_test"]["lo"].is_null());
-  EXPECT_TRUE(b["acc_test"]["sd"].is_null());
+  EXPECT_EQ(b["acc_held_out"]["mean"], 0.75);
+  EXPECT_TRUE(b["acc_held_out"]["lo"].is_null());
+  EXPECT_TRUE(b["acc_held_out"]["sd"].is_null());
   ASSERT_EQ(out["left_out"].size(), 1u);
   EXPECT_EQ(out["left_out"][0]["id"], "j-5");
   EXPECT_EQ(out["left_out"][0]["state"], "failed");

@@ -44,7 +44,7 @@ class Cluster {
   void StartCoordinator() {
     std::remove((dir_.path() + "/port").c_str());
     std::vector<std::string> argv = {BinaryDir() + "/bin/graftd", "--listen", "127.0.0.1:" + std::to_string(port_),
-                                     "--data-dir", dir_.path() + "/data", "--tokens", dir_.path() + "/tokens.yaml",
+                                     "--data-dir", dir_.path() + "/data", "--tokens-file", dir_.path() + "/tokens.yaml",
                                      "--lease-seconds", std::to_string(lease_seconds_), "--port-file",
                                      dir_.path() + "/port"};
     argv.insert(argv.end(), extra_flags_.begin(), extra_flags_.end());
@@ -93,7 +93,7 @@ class Cluster {
     EXPECT_TRUE(s.ok()) << s.error_message();
     return job;
   }
-  std::vector<v1::MetricPoint> Metrics(const std::string& id, const std::string& token = kAlice) {
+  std::vector<v1::Point> Metrics(const std::string& id, const std::string& token = kAlice) {
     v1::GetMetricsRequest req;
     req.set_job_id(id);
     v1::GetMetricsResponse resp;

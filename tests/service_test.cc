@@ -38,7 +38,7 @@ using ::graft::testing::WaitFor;
 using ::graft::testing::WriteFile;
 
 json WithoutTimings(json j) {
-  for (const char* k : {"wall_s", "seconds", "examples_per_s", "peak_rss_mb", "first_step_s", "step_seconds"}) j.erase(k);
+  for (const char* k : {"wall_s", "examples_per_s", "peak_rss_mb", "first_step_s", "train_steps_s"}) j.erase(k);
   if (j.contains("provenance")) j.erase("provenance");
   return j;
 }
@@ -58,10 +58,10 @@ TEST(Service, SubmitTrainAndFetchArtifacts) {
   EXPECT_EQ(job.step(), 120);
   json result = json::parse(job.result_json());
   EXPECT_EQ(result["steps"], 120);
-  std::vector<v1::MetricPoint> points = c.Metrics(id);
+  std::vector<v1::Point> points = c.Metrics(id);
   ASSERT_EQ(points.size(), 4u);  // steps 0, 40, 80, 120
   EXPECT_EQ(points.back().step(), 120);
-  EXPECT_EQ(json::parse(points.back().metrics_json())["iia_test"], result["iia_test"]);
+  EXPECT_EQ(json::parse(points.back().metrics_json())["iia_held_out"], result["iia_held_out"]);
   // Download weights.pt in chunks and check its digest.
   v1::DownloadArtifactRequest req;
   req.set_job_id(id);
@@ -294,7 +294,7 @@ TEST(Service, EveryCallNeedsATokenAndTheRightRole) {
 TEST(Service, RefusesAPlaintextNonLoopbackAddress) {
   ScopedTempDir dir;
   WriteFile(dir.path() + "/tokens.yaml", "[]\n");
-  auto r = ::graft::testing::RunCommand(BinaryDir() + "/bin/graftd --listen 0.0.0.0:0 --tokens " + dir.path() +
+  auto r = ::graft::testing::RunCommand(BinaryDir() + "/bin/graftd --listen 0.0.0.0:0 --tokens-file " + dir.path() +
                                         "/tokens.yaml --data-dir " + dir.path() + "/data");
   EXPECT_EQ(r.exit_code, 2) << r.output;
   EXPECT_NE(r.output.find("--allow-plaintext"), std::string::npos) << r.output;
@@ -359,7 +359,7 @@ TEST(Service, CoordinatorKilledLosesNoAcknowledgedPoint) {
   reporter.join();
   ASSERT_GE(acknowledged.size(), 30u);
   c.StartCoordinator();
-  std::vector<v1::MetricPoint> stored = c.Metrics(running);
+  std::vector<v1::Point> stored = c.Metrics(running);
   std::set<int64_t> steps;
   for (const auto& p : stored) steps.insert(p.step());
   for (int64_t s : acknowledged) EXPECT_TRUE(steps.count(s)) << "acknowledged point " << s << " lost";
@@ -371,7 +371,7 @@ TEST(Service, CoordinatorKilledLosesNoAcknowledgedPoint) {
   EXPECT_TRUE(c.WaitState(queued, v1::JOB_STATE_SUCCEEDED, 90000)) << c.Log() << ReadFile(worker->log_path());
   EXPECT_EQ(c.Get(running).attempt(), 2);
   // The second attempt replaced the fake points: the history is the real run's.
-  std::vector<v1::MetricPoint> final_points = c.Metrics(running);
+  std::vector<v1::Point> final_points = c.Metrics(running);
   ASSERT_EQ(final_points.size(), 4u);
   EXPECT_EQ(final_points.back().attempt(), 2);
 }

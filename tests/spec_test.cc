@@ -4,11 +4,11 @@
 
 #include "gtest/gtest.h"
 #include "tests/test_util.h"
-#include "trainer/spec/spec.h"
-#include "trainer/spec/suggest.h"
+#include "configs/reader/spec.h"
+#include "configs/reader/suggest.h"
 #include "trainer/worker/commands.h"
 
-namespace graft::spec {
+namespace graft::config {
 namespace {
 
 // The contract example; line numbers below refer to this text.
@@ -347,8 +347,8 @@ TEST(SpecErrors, ScanBlock) {
                "scan.layers: layer 5 does not exist; network.hidden has 3 layers, numbered 0-2");
   EXPECT_ERROR(ErrorOf(std::string(kBase) + "scan:\n  block: 65\n"), "job.yaml:37:10:",
                "scan.block: 65 units do not fit in layer 0, which has 64");
-  EXPECT_ERROR(ErrorOf(std::string(kBase) + "scan:\n  triples: 0\n"), "job.yaml:37:12:",
-               "scan.triples: expected a whole number in [1, 16777216], got 0");
+  EXPECT_ERROR(ErrorOf(std::string(kBase) + "scan:\n  pairs: 0\n"), "job.yaml:37:10:",
+               "scan.pairs: expected a whole number in [1, 16777216], got 0");
 }
 
 TEST(SpecErrors, DasBlock) {
@@ -364,4 +364,4 @@ TEST(SpecErrors, DasBlock) {
 }
 
 }  // namespace
-}  // namespace graft::spec
+}  // namespace graft::config

@@ -155,11 +155,10 @@ TEST(FlatOptimizer, MatchesLibTorchAdamAndSgd) {
 // Everything in a metrics line but the timing.
 json WithoutTimings(json j) {
   j.erase("wall_s");
-  j.erase("seconds");
   j.erase("examples_per_s");
   j.erase("peak_rss_mb");
   j.erase("first_step_s");
-  j.erase("step_seconds");
+  j.erase("train_steps_s");
   if (j.contains("provenance")) j["provenance"].erase("graft_commit");
   return j;
 }
@@ -235,8 +234,8 @@ TEST(Trainer, RunDirectoryHasTheDocumentedFields) {
   auto r = RunCommand(Worker() + " run " + Config("parcel-routing") + " --out " + dir.path() + kSmallRun);
   ASSERT_EQ(r.exit_code, 0) << r.output;
   json res = json::parse(ReadFile(dir.path() + "/result.json"));
-  for (const char* key : {"step", "examples", "wall_s", "loss_task", "loss_interchange", "acc_train", "acc_test",
-                          "iia_test", "iia_changed_test", "iia_by_set", "unchanged_fraction", "steps", "seconds",
+  for (const char* key : {"step", "examples", "wall_s", "loss_task", "loss_interchange", "acc_train", "acc_held_out",
+                          "iia_held_out", "iia_changed_held_out", "iia_by_set", "unchanged_floor", "steps", "train_steps_s",
                           "examples_per_s", "peak_rss_mb", "provenance"}) {
     EXPECT_TRUE(res.contains(key)) << key;
   }
@@ -249,14 +248,14 @@ TEST(Trainer, RunDirectoryHasTheDocumentedFields) {
   EXPECT_NE(res["provenance"]["blas_library"].get<std::string>().find("openblas"), std::string::npos)
       << res["provenance"]["blas_library"];
   for (const char* set : {"local", "careful", "local+careful"}) EXPECT_TRUE(res["iia_by_set"].contains(set)) << set;
-  const json& iia = res["iia_test"];
+  const json& iia = res["iia_held_out"];
   EXPECT_EQ(iia["n"], 512);
   auto wilson = eval::WilsonAccuracy(iia["correct"].get<int64_t>(), iia["n"].get<int64_t>());
   EXPECT_DOUBLE_EQ(iia["lo"].get<double>(), wilson.lo);
-  // The unchanged fraction is the IIA of a network that ignores every intervention; on the
+  // The unchanged floor is the IIA of a network that ignores every intervention; on the
   // changed subset such a network scores 0, so the changed count is n * (1 - unchanged).
-  EXPECT_EQ(res["iia_changed_test"]["n"].get<int64_t>(),
-            std::llround(512 * (1.0 - res["unchanged_fraction"].get<double>())));
+  EXPECT_EQ(res["iia_changed_held_out"]["n"].get<int64_t>(),
+            std::llround(512 * (1.0 - res["unchanged_floor"].get<double>())));
 }
 
 // NumPy (Debian's, float64) recomputes base and intervened logits from weights.pt, the raw
@@ -265,7 +264,7 @@ TEST(Trainer, RunDirectoryHasTheDocumentedFields) {
 TEST(Trainer, NumpyRecomputesTheIntervenedLogitsFromWeights) {
   ScopedTempDir dir;
   auto r = RunCommand(Worker() + " run " + Config("parcel-routing") + " --out " + dir.path() + kSmallRun +
-                      " --probe " + dir.path() + "/probe.json");
+                      " --dump-logits " + dir.path() + "/logits.json");
   ASSERT_EQ(r.exit_code, 0) << r.output;
   auto py = RunCommand(std::string(SystemPython()) + " " + SourceDir() + "/tests/python/recompute_intervention.py " +
                        dir.path());
@@ -318,12 +317,12 @@ TEST(Demo, ParcelRoutingIitBeatsStandardTrainingOnChangedCases) {
                          "/baseline --set training.loss_weights.interchange=0");
   ASSERT_EQ(base.exit_code, 0) << base.output;
   json a = Result(dir.path() + "/iit"), b = Result(dir.path() + "/baseline");
-  EXPECT_GE(a["acc_test"]["value"].get<double>(), 0.98);
-  EXPECT_GE(a["iia_test"]["value"].get<double>(), 0.98);
-  EXPECT_GE(a["iia_changed_test"]["value"].get<double>(), 0.98);
-  EXPECT_GE(b["acc_test"]["value"].get<double>(), 0.98);
-  EXPECT_LT(b["iia_changed_test"]["hi"].get<double>(), a["iia_changed_test"]["lo"].get<double>())
-      << "baseline " << b["iia_changed_test"] << " vs IIT " << a["iia_changed_test"];
+  EXPECT_GE(a["acc_held_out"]["value"].get<double>(), 0.98);
+  EXPECT_GE(a["iia_held_out"]["value"].get<double>(), 0.98);
+  EXPECT_GE(a["iia_changed_held_out"]["value"].get<double>(), 0.98);
+  EXPECT_GE(b["acc_held_out"]["value"].get<double>(), 0.98);
+  EXPECT_LT(b["iia_changed_held_out"]["hi"].get<double>(), a["iia_changed_held_out"]["lo"].get<double>())
+      << "baseline " << b["iia_changed_held_out"] << " vs IIT " << a["iia_changed_held_out"];
 }
 
 TEST(Demo, ChecksumDigitsReachesTheTargets) {
@@ -331,9 +330,9 @@ TEST(Demo, ChecksumDigitsReachesTheTargets) {
   auto r = RunCommand(Worker() + " run " + Config("checksum-digits") + " --out " + dir.path());
   ASSERT_EQ(r.exit_code, 0) << r.output;
   json a = Result(dir.path());
-  EXPECT_GE(a["acc_test"]["value"].get<double>(), 0.98);
-  EXPECT_GE(a["iia_test"]["value"].get<double>(), 0.98);
-  EXPECT_GE(a["iia_changed_test"]["value"].get<double>(), 0.98);
+  EXPECT_GE(a["acc_held_out"]["value"].get<double>(), 0.98);
+  EXPECT_GE(a["iia_held_out"]["value"].get<double>(), 0.98);
+  EXPECT_GE(a["iia_changed_held_out"]["value"].get<double>(), 0.98);
 }
 
 }  // namespace

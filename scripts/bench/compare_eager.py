@@ -175,7 +175,7 @@ def main():
           f" {'loop-only ratio':22}")
     for name, _ in GRAFT_VARIANTS:
         ratios = [e / g for e, g in zip(eager_walls, walls[name])]
-        loop_ratios = [e / res["seconds"] for e, res in zip(eager_loop, results[name])]
+        loop_ratios = [e / res["wall_s"] for e, res in zip(eager_loop, results[name])]
         print(f"{name:40} {med_range(ratios):22} {med_range(walls[name]):22} {med_range(eager_walls):22}"
               f" {med_range(loop_ratios):22}")
     print("(ratio: per round, eager process wall / graft process wall. loop-only ratio: eager's"
@@ -196,17 +196,17 @@ def main():
     print()
     print("## final held-out accuracy, value [95% Wilson] correct/n (first round; 'same in all'"
           " compares every round)")
-    print(f"{'side':40} {'acc_test':34} {'iia_test':36} {'iia_changed_test':36} same in all")
+    print(f"{'side':40} {'acc_held_out':34} {'iia_held_out':36} {'iia_changed_held_out':36} same in all")
     for name in [n for n, _ in GRAFT_VARIANTS] + ["eager"]:
         first = results[name][0]
-        same = all(all(res[k] == first[k] for k in ("acc_test", "iia_test", "iia_changed_test"))
+        same = all(all(res[k] == first[k] for k in ("acc_held_out", "iia_held_out", "iia_changed_held_out"))
                    for res in results[name])
-        print(f"{name:40} {cell(first['acc_test']):34} {cell(first['iia_test']):36}"
-              f" {cell(first['iia_changed_test']):36} {'yes' if same else 'no'}")
-    ec = e["iia_changed_test"]
+        print(f"{name:40} {cell(first['acc_held_out']):34} {cell(first['iia_held_out']):36}"
+              f" {cell(first['iia_changed_held_out']):36} {'yes' if same else 'no'}")
+    ec = e["iia_changed_held_out"]
     for name, _ in GRAFT_VARIANTS:
-        gc = results[name][0]["iia_changed_test"]
-        print(f"iia_changed_test: {name} value within eager's interval: {within(gc, ec)};"
+        gc = results[name][0]["iia_changed_held_out"]
+        print(f"iia_changed_held_out: {name} value within eager's interval: {within(gc, ec)};"
               f" eager's value within {name}'s interval: {within(ec, gc)}")
 
     f = flop_ceiling(widths)

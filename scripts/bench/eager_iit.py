@@ -202,15 +202,15 @@ def main():
             "step": step,
             "wall_s": wall,
             "acc_train": accuracy(int((pred_train == label_tab[acc_train_idx]).sum()), len(acc_train_idx)),
-            "acc_test": accuracy(int((pred_test == label_tab[held_idx]).sum()), len(held_idx)),
-            "iia_test": accuracy(int(ok.sum()), len(ok)),
-            "iia_changed_test": accuracy(int(ok[ev_changed].sum()), int(ev_changed.sum())),
+            "acc_held_out": accuracy(int((pred_test == label_tab[held_idx]).sum()), len(held_idx)),
+            "iia_held_out": accuracy(int(ok.sum()), len(ok)),
+            "iia_changed_held_out": accuracy(int(ok[ev_changed].sum()), int(ev_changed.sum())),
             "iia_by_set": {name: accuracy(int(ok[ev_sets == k].sum()), int((ev_sets == k).sum()))
                            for k, name in enumerate(SET_NAMES)},
-            "unchanged_fraction": float((~ev_changed).float().mean()),
+            "unchanged_floor": float((~ev_changed).float().mean()),
         }
-        print(f"step {step}/{args.steps}  acc_test {rec['acc_test']['value']:.3f}  "
-              f"iia_test {rec['iia_test']['value']:.3f} (changed {rec['iia_changed_test']['value']:.3f})",
+        print(f"step {step}/{args.steps}  acc_held_out {rec['acc_held_out']['value']:.3f}  "
+              f"iia_held_out {rec['iia_held_out']['value']:.3f} (changed {rec['iia_changed_held_out']['value']:.3f})",
               file=sys.stderr, flush=True)
         return rec
 

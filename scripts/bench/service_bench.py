@@ -52,7 +52,7 @@ class Cluster:
             f.write(WORKER)
         port_file = os.path.join(workdir, "port")
         self.graftd_cmd = [os.path.join(BIN, "graftd"), "--listen", "127.0.0.1:0", "--port-file", port_file,
-                           "--data-dir", os.path.join(workdir, "data"), "--tokens", os.path.join(workdir, "tokens.yaml"),
+                           "--data-dir", os.path.join(workdir, "data"), "--tokens-file", os.path.join(workdir, "tokens.yaml"),
                            "--lease-seconds", str(lease_seconds), "--max-sweep-jobs", "10000"]
         self.graftd = subprocess.Popen(self.graftd_cmd, stdout=subprocess.DEVNULL, stderr=open(os.path.join(workdir, "graftd.log"), "w"))
         for _ in range(200):
@@ -130,7 +130,7 @@ def bench_overhead(pb, pb_grpc, tmp, run):
         assert all(j.state == pb.JOB_STATE_SUCCEEDED for j in jobs), [j.error for j in jobs if j.error][:3]
         start = min(j.submitted_ms for j in jobs) / 1000.0
         end = max(j.finished_ms for j in jobs) / 1000.0
-        train = sum(json.loads(j.result_json)["seconds"] for j in jobs)
+        train = sum(json.loads(j.result_json)["wall_s"] for j in jobs)
         makespan = end - start
         overhead = (makespan - train / 2) / len(jobs)
         if run == 0:
@@ -192,7 +192,7 @@ def bench_ingest(pb, pb_grpc, tmp, run):
             worker_id, lease = leases[k]
             stub = c.workers_api
             for b in range(batches):
-                pts = [pb.MetricPoint(step=b * batch + i + 1, metrics_json='{"step": %d, "iia_test": {"value": 0.5}}' % (b * batch + i + 1))
+                pts = [pb.Point(step=b * batch + i + 1, metrics_json='{"step": %d, "iia_held_out": {"value": 0.5}}' % (b * batch + i + 1))
                        for i in range(batch)]
                 r = stub.Report(pb.ReportRequest(worker_id=worker_id, job_id=lease.job_id, attempt=lease.attempt,
                                                  points=pts, step=(b + 1) * batch), metadata=c.wmd, timeout=60)

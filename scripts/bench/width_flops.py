@@ -9,7 +9,7 @@ parcel-routing alignment (sites in hidden layer 1, sources in_batch): the base f
 every layer and the head; the intervened pass recomputes layers 2.. and the head (layer 1 and
 below are reused); backward costs twice each forward matmul (grad input and grad weight).
 Non-matmul work (activations, gathers, the optimiser) is not counted, so it counts against
-the achieved figure. Time is graft's `step_seconds` (inside training steps, no evaluation).
+the achieved figure. Time is graft's `train_steps_s` (inside training steps, no evaluation).
 """
 import argparse, json, os, statistics, subprocess, sys, tempfile
 
@@ -52,12 +52,12 @@ def main():
                 print("$ OPENBLAS_NUM_THREADS=1", " ".join(cmd))
             subprocess.run(cmd, env=env, check=True, capture_output=True)
             res = json.load(open(os.path.join(out, "result.json")))
-        g = per_step * a.steps / res["step_seconds"] / 1e9
+        g = per_step * a.steps / res["train_steps_s"] / 1e9
         achieved.append(g)
         print(f"run {run + 1}: torch::mm peak {peak['forward_gflops']['median']:.1f} GFLOP/s "
               f"(grad input {peak['grad_input_gflops']['median']:.1f}, grad weight "
               f"{peak['grad_weight_gflops']['median']:.1f}); graft {g:.1f} GFLOP/s over {a.steps} steps "
-              f"in {res['step_seconds']:.2f} s; BLAS {res['provenance']['blas_library']} "
+              f"in {res["train_steps_s"]:.2f} s; BLAS {res['provenance']['blas_library']} "
               f"threads {res['provenance']['blas_threads']}")
     ratios = [x / p for x, p in zip(achieved, peaks)]
     print(f"width {a.width}, batch {a.batch}: graft {statistics.median(achieved):.1f} GFLOP/s "

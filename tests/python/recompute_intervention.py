@@ -12,7 +12,7 @@ RUN_DIR holds what graft wrote after training:
                torch.load returns as a plain dict. Exactly these keys: embed.<input> [values, dim]
                for each input, hidden.<k>.weight [out, in] and hidden.<k>.bias [out] for each
                hidden layer k, out.weight [classes, last width], out.bias [classes].
-  probe.json   {"inputs": [...], "sets": [{"name", "variables"}], "triples": [{"base": [value
+  logits.json   {"inputs": [...], "sets": [{"name", "variables"}], "triples": [{"base": [value
                index per input], "source": [...], "set": name}], "base_logits": [[...]],
                "intervened_logits": [[...]]}, one logits row per triple.
 
@@ -26,7 +26,7 @@ aligned at layer k with h^s_k at those units, then continue from the overwritten
 Only the weights, the raw input value indices, the source choices and the alignment are used;
 no activation graft computed is read.
 
-Checks: weights match the spec exactly (keys and shapes); both logits agree with the probe's
+Checks: weights match the spec exactly (keys and shapes); both logits agree with the dump's
 within 1e-5 absolute; and at least one triple's intervened logits differ from its base logits
 by more than 1e-3, so agreement is not vacuous.
 
@@ -203,9 +203,9 @@ def main(argv):
     try:
         spec = read_spec(run_dir, yaml)
         weights, num_classes = read_weights(run_dir, spec, np, torch)
-        with open(os.path.join(run_dir, "probe.json"), encoding="utf-8") as f:
-            probe = json.load(f)
-        return check(spec, weights, num_classes, probe, np, activation_function(spec["activation"], np, erf))
+        with open(os.path.join(run_dir, "logits.json"), encoding="utf-8") as f:
+            dump = json.load(f)
+        return check(spec, weights, num_classes, dump, np, activation_function(spec["activation"], np, erf))
     except CheckFailed as e:
         print(f"recompute_intervention: FAILED: {e}", file=sys.stderr)
         return 1
@@ -214,22 +214,22 @@ def main(argv):
         return 1
 
 
-def check(spec, weights, num_classes, probe, np, act):
+def check(spec, weights, num_classes, dump, np, act):
     names = spec["names"]
-    require(probe.get("inputs") == names, f"probe.json: inputs {probe.get('inputs')} differ from the spec's {names}")
+    require(dump.get("inputs") == names, f"logits.json: inputs {dump.get('inputs')} differ from the spec's {names}")
     sets = {}
-    for s in probe["sets"]:
+    for s in dump["sets"]:
         for v in s["variables"]:
-            require(v in spec["alignment"], f"probe.json: set {s['name']!r} names {v!r}, which is not aligned")
+            require(v in spec["alignment"], f"logits.json: set {s['name']!r} names {v!r}, which is not aligned")
         sets[s["name"]] = list(s["variables"])
-    triples = probe["triples"]
-    require(len(triples) > 0, "probe.json: no triples")
-    base_probe = np.asarray(probe["base_logits"], dtype=np.float64)
-    inter_probe = np.asarray(probe["intervened_logits"], dtype=np.float64)
-    for label, arr in (("base_logits", base_probe), ("intervened_logits", inter_probe)):
+    triples = dump["triples"]
+    require(len(triples) > 0, "logits.json: no triples")
+    base_dumped = np.asarray(dump["base_logits"], dtype=np.float64)
+    inter_dumped = np.asarray(dump["intervened_logits"], dtype=np.float64)
+    for label, arr in (("base_logits", base_dumped), ("intervened_logits", inter_dumped)):
         require(arr.shape == (len(triples), num_classes),
-                f"probe.json: {label} has shape {list(arr.shape)}, expected [{len(triples)}, {num_classes}]")
-        require(np.all(np.isfinite(arr)), f"probe.json: {label} has non-finite values")
+                f"logits.json: {label} has shape {list(arr.shape)}, expected [{len(triples)}, {num_classes}]")
+        require(np.all(np.isfinite(arr)), f"logits.json: {label} has non-finite values")
 
     embed = [weights[f"embed.{n}"] for n in names]
     layers = [(weights[f"hidden.{k}.weight"], weights[f"hidden.{k}.bias"]) for k in range(len(spec["hidden"]))]
@@ -238,9 +238,9 @@ def check(spec, weights, num_classes, probe, np, act):
     def indices(triple, key):
         values = triple[key]
         require(isinstance(values, list) and len(values) == len(names),
-                f"probe.json: triple {key} {values!r} needs one value index per input")
+                f"logits.json: triple {key} {values!r} needs one value index per input")
         for v, size, n in zip(values, spec["sizes"], names):
-            require(isinstance(v, int) and 0 <= v < size, f"probe.json: {key} value {v!r} of {n} is not in [0, {size})")
+            require(isinstance(v, int) and 0 <= v < size, f"logits.json: {key} value {v!r} of {n} is not in [0, {size})")
         return values
 
     def embed_row(values):
@@ -259,10 +259,10 @@ def check(spec, weights, num_classes, probe, np, act):
             acts.append(h)
         return acts, head_w @ h + head_b
 
-    base_mine = np.empty_like(base_probe)
-    inter_mine = np.empty_like(inter_probe)
+    base_mine = np.empty_like(base_dumped)
+    inter_mine = np.empty_like(inter_dumped)
     for i, t in enumerate(triples):
-        require(t["set"] in sets, f"probe.json: triple {i} uses unknown set {t['set']!r}")
+        require(t["set"] in sets, f"logits.json: triple {i} uses unknown set {t['set']!r}")
         b, s = indices(t, "base"), indices(t, "source")
         source_acts, _ = run(s)
         overwrite = {}
@@ -272,15 +272,15 @@ def check(spec, weights, num_classes, probe, np, act):
         _, base_mine[i] = run(b)
         _, inter_mine[i] = run(b, overwrite)
 
-    d_base = np.abs(base_mine - base_probe)
-    d_inter = np.abs(inter_mine - inter_probe)
+    d_base = np.abs(base_mine - base_dumped)
+    d_inter = np.abs(inter_mine - inter_dumped)
     print(f"max |diff| base={d_base.max():.3g} intervened={d_inter.max():.3g} over {len(triples)} triples")
     ok = True
     for label, diff in (("base", d_base), ("intervened", d_inter)):
         bad = np.argwhere(diff > TOLERANCE)
         for i, c in bad[:10]:
             mine = base_mine if label == "base" else inter_mine
-            theirs = base_probe if label == "base" else inter_probe
+            theirs = base_dumped if label == "base" else inter_dumped
             print(f"  {label} logits of triple {i} class {c}: graft {theirs[i, c]!r}, recomputed {mine[i, c]!r}")
         if len(bad):
             print(f"MISMATCH: {len(bad)} {label} logits differ by more than {TOLERANCE}")

@@ -68,7 +68,7 @@ def main():
                 "points": len(points),
                 "last_step": points[-1].step if points else None,
                 "total_steps": job.total_steps,
-                "iia_test": json.loads(points[-1].metrics_json)["iia_test"]["value"] if points else None,
+                "iia_held_out": json.loads(points[-1].metrics_json)["iia_held_out"]["value"] if points else None,
             }
             print(json.dumps(out))
             ok = (job.state == pb.JOB_STATE_SUCCEEDED and points and points[-1].step == job.total_steps)

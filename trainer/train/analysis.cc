@@ -127,7 +127,7 @@ std::string UnitsText(const std::vector<int>& units) {
   return absl::StrJoin(units, ",");
 }
 
-absl::StatusOr<net::Mlp> LoadNetwork(const spec::ResolvedJob& job, const AnalysisOptions& options) {
+absl::StatusOr<net::Mlp> LoadNetwork(const config::ResolvedJob& job, const AnalysisOptions& options) {
   if (options.weights_path.empty()) return absl::InvalidArgumentError("--weights FILE is required");
   SetThreads(job.spec.training.threads);
   net::Mlp net = CreateMlp(job);
@@ -224,13 +224,13 @@ std::string ScanSvg(const std::vector<std::string>& variables, const std::vector
   return svg.str();
 }
 
-absl::StatusOr<std::string> ScanNetwork(const spec::ResolvedJob& job, net::MlpImpl& net, const std::string& out_dir,
+absl::StatusOr<std::string> ScanNetwork(const config::ResolvedJob& job, net::MlpImpl& net, const std::string& out_dir,
                                         std::ostream* progress) {
   if (job.spec.alignment.empty()) {
     return absl::InvalidArgumentError("scan: the config aligns no variable; add the variables to scan to 'alignment'");
   }
   c10::InferenceMode guard;
-  const spec::ScanSpec& sc = job.spec.scan;
+  const config::ScanSpec& sc = job.spec.scan;
   const auto& model = *job.model;
   const auto& widths = job.spec.network.hidden;
   std::vector<int> layers = sc.layers;
@@ -241,17 +241,17 @@ absl::StatusOr<std::string> ScanNetwork(const spec::ResolvedJob& job, net::MlpIm
   std::vector<std::vector<Candidate>> all;
   std::vector<int> best;
   ReportJson report;
-  report["triples_per_candidate"] = sc.triples;
-  report["ranked_by"] = "iia_changed_test";
+  report["pairs_per_candidate"] = sc.pairs;
+  report["ranked_by"] = "iia_changed_held_out";
   ReportJson by_var = ReportJson::object();
   std::ostringstream table, summary;
   table << "variable\tlayer\tkind\tunits\tiia\tiia_lo\tiia_hi\tn\tiia_changed\tchanged_lo\tchanged_hi\tchanged_n\n";
   for (size_t a = 0; a < job.spec.alignment.size(); ++a) {
-    const spec::SiteSpec& site = job.spec.alignment[a];
+    const config::SiteSpec& site = job.spec.alignment[a];
     const int v = model.Find(site.variable);
-    std::vector<spec::InterventionSet> sets = {spec::InterventionSet{site.variable, {v}}};
+    std::vector<config::InterventionSet> sets = {config::InterventionSet{site.variable, {v}}};
     LabelTables labels(model, sets);
-    std::vector<causal::Triple> triples = causal::MakeTriples(job.split.test, 1, sc.triples, job.spec.seed + a);
+    std::vector<causal::Triple> triples = causal::MakeTriples(job.split.test, 1, sc.pairs, job.spec.seed + a);
     std::vector<int64_t> b, s;
     for (const auto& t : triples) {
       b.push_back(t.base);
@@ -364,9 +364,9 @@ struct DasOutcome {
 };
 
 // Trains a rotation of `layer` with `net` frozen, then evaluates it on the held-out triples.
-DasOutcome SearchRotation(const spec::ResolvedJob& job, net::MlpImpl& net, const std::vector<int>& offsets,
+DasOutcome SearchRotation(const config::ResolvedJob& job, net::MlpImpl& net, const std::vector<int>& offsets,
                           const std::vector<int>& dims, const std::string& label, std::ostream* progress) {
-  const spec::DasSpec& d = job.spec.das;
+  const config::DasSpec& d = job.spec.das;
   const auto& model = *job.model;
   const int layer = d.layer;
   const int width = job.spec.network.hidden[layer];
@@ -443,7 +443,7 @@ DasOutcome SearchRotation(const spec::ResolvedJob& job, net::MlpImpl& net, const
 
 }  // namespace
 
-absl::StatusOr<std::string> EvaluateStored(const spec::ResolvedJob& job, const AnalysisOptions& options) {
+absl::StatusOr<std::string> EvaluateStored(const config::ResolvedJob& job, const AnalysisOptions& options) {
   try {
     if (options.weights_path.empty()) return absl::InvalidArgumentError("--weights FILE is required");
     SetThreads(job.spec.training.threads);
@@ -467,7 +467,7 @@ absl::StatusOr<std::string> EvaluateStored(const spec::ResolvedJob& job, const A
       ReportJson metrics = EvaluateNetwork(job, *net, labels, inputs, logits);
       for (auto& [k, v] : metrics.items()) m[k] = v;
     }
-    m["iia_step0"] = ReportJson{{"iia_test", step0["iia_test"]}, {"iia_changed_test", step0["iia_changed_test"]}};
+    m["control_untrained_network"] = ReportJson{{"iia_held_out", step0["iia_held_out"]}, {"iia_changed_held_out", step0["iia_changed_held_out"]}};
     std::vector<std::string> failures;
     ReportJson controls = FinalControls(job, *net, labels, inputs, &failures);
     for (auto& [k, v] : controls.items()) m[k] = v;
@@ -480,21 +480,21 @@ absl::StatusOr<std::string> EvaluateStored(const spec::ResolvedJob& job, const A
     st = WriteFileAtomically((fs::path(options.out_dir) / "failures.jsonl").string(), text);
     if (!st.ok()) return st;
     std::ostringstream s;
-    s << "task accuracy, held out   " << AccuracyText(m["acc_test"]) << "\n";
-    s << "IIA, held out             " << AccuracyText(m["iia_test"]) << "\n";
-    s << "IIA, changed cases only   " << AccuracyText(m["iia_changed_test"]) << "\n";
+    s << "task accuracy, held out   " << AccuracyText(m["acc_held_out"]) << "\n";
+    s << "IIA, held out             " << AccuracyText(m["iia_held_out"]) << "\n";
+    s << "IIA, changed cases only   " << AccuracyText(m["iia_changed_held_out"]) << "\n";
     for (auto& [name, a] : m["iia_by_set"].items()) s << "IIA, set " << name << "  " << AccuracyText(a) << "\n";
-    s << "unchanged floor           " << Fixed(m["unchanged_fraction"].get<double>()) << "\n";
-    s << "control, random units     " << AccuracyText(m["control_random_units"]["iia_test"]) << " (changed "
-      << AccuracyText(m["control_random_units"]["iia_changed_test"]) << ")\n";
-    s << "control, untrained net    " << AccuracyText(step0["iia_test"]) << "\n";
+    s << "unchanged floor           " << Fixed(m["unchanged_floor"].get<double>()) << "\n";
+    s << "control, random units     " << AccuracyText(m["control_random_units"]["iia_held_out"]) << " (changed "
+      << AccuracyText(m["control_random_units"]["iia_changed_held_out"]) << ")\n";
+    s << "control, untrained net    " << AccuracyText(step0["iia_held_out"]) << "\n";
     return s.str();
   } catch (const c10::Error& e) {
     return absl::InternalError(absl::StrCat("LibTorch: ", e.what_without_backtrace()));
   }
 }
 
-absl::StatusOr<std::string> ScanStored(const spec::ResolvedJob& job, const AnalysisOptions& options) {
+absl::StatusOr<std::string> ScanStored(const config::ResolvedJob& job, const AnalysisOptions& options) {
   try {
     auto net = LoadNetwork(job, options);
     if (!net.ok()) return net.status();
@@ -504,15 +504,15 @@ absl::StatusOr<std::string> ScanStored(const spec::ResolvedJob& job, const Analy
   }
 }
 
-absl::StatusOr<std::string> DasStored(const spec::ResolvedJob& job, const AnalysisOptions& options) {
+absl::StatusOr<std::string> DasStored(const config::ResolvedJob& job, const AnalysisOptions& options) {
   try {
     if (job.spec.alignment.empty()) {
       return absl::InvalidArgumentError("das: the config aligns no variable; add the variables to search for to 'alignment'");
     }
     auto trained = LoadNetwork(job, options);
     if (!trained.ok()) return trained.status();
-    spec::ResolvedJob resolved = job;
-    spec::DasSpec& d = resolved.spec.das;
+    config::ResolvedJob resolved = job;
+    config::DasSpec& d = resolved.spec.das;
     if (d.layer < 0) {  // no das: block: the layer every aligned variable shares
       for (const auto& site : job.spec.alignment) {
         if (site.layer != job.spec.alignment.front().layer) {
@@ -567,10 +567,10 @@ absl::StatusOr<std::string> DasStored(const spec::ResolvedJob& job, const Analys
     if (!st.ok()) return st;
     std::ostringstream s;
     s << "DAS at layer " << d.layer << ", " << d.steps << " steps\n";
-    s << "trained network:   IIA " << AccuracyText(real.metrics["iia_test"]) << ", changed "
-      << AccuracyText(real.metrics["iia_changed_test"]) << "\n";
-    s << "untrained control: IIA " << AccuracyText(control.metrics["iia_test"]) << ", changed "
-      << AccuracyText(control.metrics["iia_changed_test"]) << "\n";
+    s << "trained network:   IIA " << AccuracyText(real.metrics["iia_held_out"]) << ", changed "
+      << AccuracyText(real.metrics["iia_changed_held_out"]) << "\n";
+    s << "untrained control: IIA " << AccuracyText(control.metrics["iia_held_out"]) << ", changed "
+      << AccuracyText(control.metrics["iia_changed_held_out"]) << "\n";
     return s.str();
   } catch (const c10::Error& e) {
     return absl::InternalError(absl::StrCat("LibTorch: ", e.what_without_backtrace()));

@@ -11,7 +11,7 @@
 #include <string>
 
 #include "absl/status/statusor.h"
-#include "trainer/spec/spec.h"
+#include "configs/reader/spec.h"
 
 namespace graft::train {
 
@@ -31,9 +31,9 @@ struct AnalysisOptions {
 // not fit the config (the message names the file, the tensor and both shapes, or the missing and
 // extra names) and for a config without what the command needs (an alignment); Unavailable for
 // files that cannot be written (naming them).
-absl::StatusOr<std::string> EvaluateStored(const spec::ResolvedJob& job, const AnalysisOptions& options);
-absl::StatusOr<std::string> ScanStored(const spec::ResolvedJob& job, const AnalysisOptions& options);
-absl::StatusOr<std::string> DasStored(const spec::ResolvedJob& job, const AnalysisOptions& options);
+absl::StatusOr<std::string> EvaluateStored(const config::ResolvedJob& job, const AnalysisOptions& options);
+absl::StatusOr<std::string> ScanStored(const config::ResolvedJob& job, const AnalysisOptions& options);
+absl::StatusOr<std::string> DasStored(const config::ResolvedJob& job, const AnalysisOptions& options);
 
 }  // namespace graft::train
 

@@ -12,7 +12,7 @@ namespace graft::train {
 
 using torch::Tensor;
 
-std::vector<UnitSite> AlignmentSites(const spec::ResolvedJob& job) {
+std::vector<UnitSite> AlignmentSites(const config::ResolvedJob& job) {
   std::vector<UnitSite> sites(job.model->num_variables());
   for (int v = 0; v < job.model->num_variables(); ++v) {
     const int s = job.site_of_variable[v];
@@ -23,7 +23,7 @@ std::vector<UnitSite> AlignmentSites(const spec::ResolvedJob& job) {
   return sites;
 }
 
-UnitMasks::UnitMasks(const std::vector<spec::InterventionSet>& sets, const std::vector<UnitSite>& sites,
+UnitMasks::UnitMasks(const std::vector<config::InterventionSet>& sets, const std::vector<UnitSite>& sites,
                      const std::vector<int>& widths) {
   per_layer_.assign(widths.size(), Tensor());
   const int num_sets = static_cast<int>(sets.size());
@@ -60,7 +60,7 @@ Tensor UnitMasks::Logits(net::MlpImpl& net, const Tensor& base_in, const Tensor&
   return net.Intervened(base, source, ForSets(set_index));
 }
 
-net::Mlp CreateMlp(const spec::ResolvedJob& job) {
+net::Mlp CreateMlp(const config::ResolvedJob& job) {
   net::MlpOptions o;
   const auto& model = *job.model;
   for (int i : model.inputs()) {
@@ -68,7 +68,7 @@ net::Mlp CreateMlp(const spec::ResolvedJob& job) {
     o.input_names.push_back(model.variable(i).name);
   }
   o.embedding_dim = job.spec.network.embedding_dim;
-  o.fixed_embedding = job.spec.network.embedding_init == spec::EmbeddingInit::kFixedRandom;
+  o.fixed_embedding = job.spec.network.embedding_init == config::EmbeddingInit::kFixedRandom;
   o.hidden = job.spec.network.hidden;
   o.activation = static_cast<net::ActivationKind>(static_cast<int>(job.spec.network.activation));
   o.num_classes = model.variable(model.output()).domain.size();
@@ -76,7 +76,7 @@ net::Mlp CreateMlp(const spec::ResolvedJob& job) {
   return net::Mlp(o);
 }
 
-EvalInputs CreateEvalInputs(const spec::ResolvedJob& job) {
+EvalInputs CreateEvalInputs(const config::ResolvedJob& job) {
   const int64_t cap = job.spec.evaluation.triples;
   auto to_tensor = [](const std::vector<int64_t>& v) { return torch::tensor(v, torch::kInt64); };
   auto pick = [&](const std::vector<int64_t>& inputs, uint64_t stream) {
@@ -124,7 +124,7 @@ ReportJson NamedInputs(const causal::CausalModel& model, const Tensor& row) {
 
 }  // namespace
 
-ReportJson EvaluateTriples(const causal::CausalModel& model, const std::vector<spec::InterventionSet>& sets,
+ReportJson EvaluateTriples(const causal::CausalModel& model, const std::vector<config::InterventionSet>& sets,
                            const LabelTables& labels, const Tensor& base, const Tensor& source, const Tensor& set,
                            const IntervenedLogitsFn& logits, const TripleDetail& detail,
                            std::vector<std::string>* failures) {
@@ -181,14 +181,14 @@ ReportJson EvaluateTriples(const causal::CausalModel& model, const std::vector<s
     }
   }
   ReportJson m;
-  m["iia_test"] = AccuracyReport(eval::WilsonAccuracy(correct, n));
-  m["iia_changed_test"] = AccuracyReport(eval::WilsonAccuracy(changed_correct, changed_n));
+  m["iia_held_out"] = AccuracyReport(eval::WilsonAccuracy(correct, n));
+  m["iia_changed_held_out"] = AccuracyReport(eval::WilsonAccuracy(changed_correct, changed_n));
   ReportJson by_set = ReportJson::object();
   for (int s = 0; s < num_sets; ++s) {
     by_set[sets[s].name] = AccuracyReport(eval::WilsonAccuracy(correct_by_set[s], n_by_set[s]));
   }
   m["iia_by_set"] = by_set;
-  m["unchanged_fraction"] = n > 0 ? static_cast<double>(unchanged) / static_cast<double>(n) : 0.0;
+  m["unchanged_floor"] = n > 0 ? static_cast<double>(unchanged) / static_cast<double>(n) : 0.0;
   if (detail.confusion) {
     ReportJson c;
     ReportJson names = ReportJson::array();
@@ -213,7 +213,7 @@ ReportJson EvaluateTriples(const causal::CausalModel& model, const std::vector<s
   return m;
 }
 
-ReportJson EvaluateNetwork(const spec::ResolvedJob& job, net::MlpImpl& net, const LabelTables& labels,
+ReportJson EvaluateNetwork(const config::ResolvedJob& job, net::MlpImpl& net, const LabelTables& labels,
                            const EvalInputs& inputs, const IntervenedLogitsFn& logits) {
   const int out = job.model->output();
   auto task_accuracy = [&](const Tensor& numbers) {
@@ -224,14 +224,14 @@ ReportJson EvaluateNetwork(const spec::ResolvedJob& job, net::MlpImpl& net, cons
   };
   ReportJson m;
   m["acc_train"] = AccuracyReport(task_accuracy(inputs.train));
-  m["acc_test"] = AccuracyReport(task_accuracy(inputs.test));
+  m["acc_held_out"] = AccuracyReport(task_accuracy(inputs.test));
   ReportJson iia = EvaluateTriples(*job.model, job.sets, labels, inputs.base, inputs.source, inputs.set, logits,
                                    TripleDetail{}, nullptr);
   for (auto& [k, v] : iia.items()) m[k] = v;
   return m;
 }
 
-std::vector<UnitSite> RandomUnitSites(const spec::ResolvedJob& job) {
+std::vector<UnitSite> RandomUnitSites(const config::ResolvedJob& job) {
   const std::vector<UnitSite> real = AlignmentSites(job);
   std::vector<UnitSite> control(real.size());
   causal::Rng rng(job.spec.seed, 0xC047);
@@ -261,7 +261,7 @@ std::vector<UnitSite> RandomUnitSites(const spec::ResolvedJob& job) {
   return control;
 }
 
-ReportJson FinalControls(const spec::ResolvedJob& job, net::MlpImpl& net, const LabelTables& labels,
+ReportJson FinalControls(const config::ResolvedJob& job, net::MlpImpl& net, const LabelTables& labels,
                          const EvalInputs& inputs, std::vector<std::string>* failures) {
   c10::InferenceMode guard;
   ReportJson out;
@@ -287,8 +287,8 @@ ReportJson FinalControls(const spec::ResolvedJob& job, net::MlpImpl& net, const 
   }
   ReportJson control;
   control["sites"] = sites;
-  control["iia_test"] = c["iia_test"];
-  control["iia_changed_test"] = c["iia_changed_test"];
+  control["iia_held_out"] = c["iia_held_out"];
+  control["iia_changed_held_out"] = c["iia_changed_held_out"];
   control["iia_by_set"] = c["iia_by_set"];
   out["control_random_units"] = control;
   return out;

@@ -17,7 +17,7 @@
 #include "trainer/causal/model.h"
 #include "trainer/eval/wilson.h"
 #include "trainer/net/mlp.h"
-#include "trainer/spec/spec.h"
+#include "configs/reader/spec.h"
 
 namespace graft::train {
 
@@ -27,7 +27,7 @@ using ReportJson = nlohmann::ordered_json;  // keys in the order written
 // `model`, which must outlive it.
 class LabelTables {
  public:
-  LabelTables(const causal::CausalModel& model, const std::vector<spec::InterventionSet>& sets) : model_(model) {
+  LabelTables(const causal::CausalModel& model, const std::vector<config::InterventionSet>& sets) : model_(model) {
     const int n = model.num_variables();
     tables_.resize(n);
     strides_.resize(n);
@@ -157,12 +157,12 @@ struct UnitSite {
 };
 
 // The config's alignment, indexed by model variable.
-std::vector<UnitSite> AlignmentSites(const spec::ResolvedJob& job);
+std::vector<UnitSite> AlignmentSites(const config::ResolvedJob& job);
 
 // Per-layer unit masks of a list of intervention sets over given sites.
 class UnitMasks {
  public:
-  UnitMasks(const std::vector<spec::InterventionSet>& sets, const std::vector<UnitSite>& sites,
+  UnitMasks(const std::vector<config::InterventionSet>& sets, const std::vector<UnitSite>& sites,
             const std::vector<int>& widths);
   int lowest_layer() const { return lowest_; }
   int highest_layer() const { return highest_; }
@@ -180,7 +180,7 @@ class UnitMasks {
 
 // The job's network before training: torch::manual_seed(spec.seed), then the MLP, exactly as the
 // trainer builds it, so its IIA is the run's step-0 IIA.
-net::Mlp CreateMlp(const spec::ResolvedJob& job);
+net::Mlp CreateMlp(const config::ResolvedJob& job);
 
 // The fixed evaluation data of a job: input numbers for task accuracy on training and held-out
 // inputs (each capped at evaluation.triples, seeded) and the held-out (base, source, set) triples.
@@ -188,7 +188,7 @@ struct EvalInputs {
   torch::Tensor train, test;         // input numbers
   torch::Tensor base, source, set;   // triples: input numbers and set indices
 };
-EvalInputs CreateEvalInputs(const spec::ResolvedJob& job);
+EvalInputs CreateEvalInputs(const config::ResolvedJob& job);
 
 // Intervened logits for decoded base and source inputs [B, I] and set indices [B].
 using IntervenedLogitsFn =
@@ -200,28 +200,28 @@ struct TripleDetail {
   int max_failures = 0;    // append up to this many failing triples as JSON lines to `failures`
 };
 
-// IIA over the triples (base, source: input numbers; set: indices into `sets`): "iia_test",
-// "iia_changed_test", "iia_by_set" (keyed by set name), "unchanged_fraction", and "confusion"
+// IIA over the triples (base, source: input numbers; set: indices into `sets`): "iia_held_out",
+// "iia_changed_held_out", "iia_by_set" (keyed by set name), "unchanged_floor", and "confusion"
 // when asked. Each accuracy is {"value", "lo", "hi", "correct", "n"} with 95% Wilson bounds.
-ReportJson EvaluateTriples(const causal::CausalModel& model, const std::vector<spec::InterventionSet>& sets,
+ReportJson EvaluateTriples(const causal::CausalModel& model, const std::vector<config::InterventionSet>& sets,
                            const LabelTables& labels, const torch::Tensor& base, const torch::Tensor& source,
                            const torch::Tensor& set, const IntervenedLogitsFn& logits, const TripleDetail& detail,
                            std::vector<std::string>* failures);
 
-// Everything an evaluation line reports about the network: "acc_train", "acc_test", then the
+// Everything an evaluation line reports about the network: "acc_train", "acc_held_out", then the
 // keys of EvaluateTriples over the job's held-out triples and sets.
-ReportJson EvaluateNetwork(const spec::ResolvedJob& job, net::MlpImpl& net, const LabelTables& labels,
+ReportJson EvaluateNetwork(const config::ResolvedJob& job, net::MlpImpl& net, const LabelTables& labels,
                            const EvalInputs& inputs, const IntervenedLogitsFn& logits);
 
 // The random-units control: per aligned variable the same number of units in the same layer,
 // drawn (seeded by spec.seed) from the layer's units outside the real alignment when enough are
 // free, else from units no other control variable took. Indexed by model variable.
-std::vector<UnitSite> RandomUnitSites(const spec::ResolvedJob& job);
+std::vector<UnitSite> RandomUnitSites(const config::ResolvedJob& job);
 
 // The controls of a final report for the network as it is now: "confusion" (real alignment),
-// "control_random_units" ({"sites", "iia_test", "iia_changed_test", "iia_by_set"}), and up to 200
+// "control_random_units" ({"sites", "iia_held_out", "iia_changed_held_out", "iia_by_set"}), and up to 200
 // failing triples of the real alignment appended to `failures` as JSON lines.
-ReportJson FinalControls(const spec::ResolvedJob& job, net::MlpImpl& net, const LabelTables& labels,
+ReportJson FinalControls(const config::ResolvedJob& job, net::MlpImpl& net, const LabelTables& labels,
                          const EvalInputs& inputs, std::vector<std::string>* failures);
 
 // Writes `text` to `path` through a temporary file and a rename. Errors name the file.

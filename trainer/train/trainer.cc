@@ -181,7 +181,7 @@ absl::Status WriteText(const fs::path& path, const std::string& text) {
 
 class Run {
  public:
-  Run(const spec::ResolvedJob& job, const RunOptions& options)
+  Run(const config::ResolvedJob& job, const RunOptions& options)
       : job_(job),
         spec_(job.spec),
         options_(options),
@@ -201,12 +201,12 @@ class Run {
   absl::Status SaveCheckpoint(int64_t step);
   absl::Status LoadCheckpoint(const fs::path& path, int64_t* step);
   absl::Status WriteWeights(const fs::path& path);
-  absl::Status WriteProbe();
+  absl::Status WriteLogitsDump();
   json Provenance() const;
   void Progress(int64_t step, bool final_line);
 
-  const spec::ResolvedJob& job_;
-  const spec::JobSpec& spec_;
+  const config::ResolvedJob& job_;
+  const config::JobSpec& spec_;
   const RunOptions& options_;
   LabelTables labels_;
   BatchStream stream_;
@@ -243,7 +243,7 @@ void Run::BuildNetwork() {
   }
   const auto& opt = spec_.training.optimizer;
   FlatOptimizerOptions fo;
-  fo.adam = opt.type == spec::OptimizerType::kAdam;
+  fo.adam = opt.type == config::OptimizerType::kAdam;
   fo.lr = opt.lr;
   fo.weight_decay = opt.weight_decay;
   fo.momentum = opt.momentum;
@@ -255,7 +255,7 @@ void Run::BuildNetwork() {
 }
 
 std::pair<double, double> Run::Step() {
-  const spec::TrainingSpec& t = spec_.training;
+  const config::TrainingSpec& t = spec_.training;
   const int B = t.batch_size;
   auto fill = [](Tensor& dst, int n, const auto& produce) {
     if (!dst.defined() || dst.size(0) != n) dst = torch::empty({n}, torch::kInt64);
@@ -276,7 +276,7 @@ std::pair<double, double> Run::Step() {
     const Tensor& set_index = step_sets_;
     std::vector<Tensor> source_acts;
     Tensor source_num, source_in, perm;
-    if (t.sources == spec::SourceMode::kInBatch) {
+    if (t.sources == config::SourceMode::kInBatch) {
       // The sources are a permutation of the batch: their activations are the base's own.
       std::vector<int64_t> order(B);
       for (int i = 0; i < B; ++i) order[i] = i;
@@ -364,7 +364,7 @@ absl::Status Run::SaveCheckpoint(int64_t step) {
   const double wall = wall_before_ +
                       std::chrono::duration<double>(std::chrono::steady_clock::now() - start_).count();
   archive.write("wall_s", torch::tensor(wall, torch::kFloat64));
-  const std::string hash = spec::SpecHash(spec_);
+  const std::string hash = config::SpecHash(spec_);
   archive.write("spec_hash", c10::IValue(hash));
   // The step-0 evaluation feeds result.json's controls; a resumed attempt cannot recompute it.
   archive.write("step0_eval", c10::IValue(step0_eval_.is_null() ? std::string() : step0_eval_.dump()));
@@ -387,10 +387,10 @@ absl::Status Run::LoadCheckpoint(const fs::path& path, int64_t* step) {
     archive.load_from(path.string());
     c10::IValue hash;
     archive.read("spec_hash", hash);
-    if (hash.toStringRef() != spec::SpecHash(spec_)) {
+    if (hash.toStringRef() != config::SpecHash(spec_)) {
       return absl::InvalidArgumentError(absl::StrCat(
           path.string(), ": this checkpoint belongs to a different spec (hash ", hash.toStringRef(),
-          ", this config resolves to ", spec::SpecHash(spec_), "); resume with the same config and --set values"));
+          ", this config resolves to ", config::SpecHash(spec_), "); resume with the same config and --set values"));
     }
     c10::IValue step0;
     if (archive.try_read("step0_eval", step0) && !step0.toStringRef().empty()) {
@@ -444,9 +444,9 @@ absl::Status Run::WriteWeights(const fs::path& path) {
   return WriteText(path, std::string(bytes.begin(), bytes.end()));
 }
 
-absl::Status Run::WriteProbe() {
+absl::Status Run::WriteLogitsDump() {
   c10::InferenceMode guard;
-  const int64_t n = std::min<int64_t>(options_.probe_triples, eval_.base.size(0));
+  const int64_t n = std::min<int64_t>(options_.logits_dump_triples, eval_.base.size(0));
   Tensor b_in = labels_.Decode(eval_.base.narrow(0, 0, n));
   Tensor s_in = labels_.Decode(eval_.source.narrow(0, 0, n));
   Tensor z = eval_.set.narrow(0, 0, n);
@@ -490,7 +490,7 @@ absl::Status Run::WriteProbe() {
   }
   j["base_logits"] = frows(base_logits);
   j["intervened_logits"] = frows(iit);
-  return WriteText(options_.probe_path, j.dump(1) + "\n");
+  return WriteText(options_.logits_dump_path, j.dump(1) + "\n");
 }
 
 json Run::Provenance() const {
@@ -504,7 +504,7 @@ json Run::Provenance() const {
   p["torch_threads"] = torch::get_num_threads();
   p["threads"] = threads_;
   p["cpu_model"] = CpuModel();
-  p["spec_hash"] = spec::SpecHash(spec_);
+  p["spec_hash"] = config::SpecHash(spec_);
   return p;
 }
 
@@ -519,9 +519,9 @@ void Run::Progress(int64_t step, bool final_line) {
   line << "step " << step << "/" << spec_.training.steps << "  " << std::fixed << std::setprecision(0) << rate
        << " ex/s";
   if (!last_eval_.is_null()) {
-    line << std::setprecision(3) << "  acc_test " << last_eval_["acc_test"]["value"].get<double>() << "  iia_test "
-         << last_eval_["iia_test"]["value"].get<double>() << " (changed "
-         << last_eval_["iia_changed_test"]["value"].get<double>() << ")";
+    line << std::setprecision(3) << "  acc_held_out " << last_eval_["acc_held_out"]["value"].get<double>() << "  iia_held_out "
+         << last_eval_["iia_held_out"]["value"].get<double>() << " (changed "
+         << last_eval_["iia_changed_held_out"]["value"].get<double>() << ")";
   }
   line << std::setprecision(0) << "  eta " << eta << "s";
   if (options_.progress_is_terminal) {
@@ -533,7 +533,7 @@ void Run::Progress(int64_t step, bool final_line) {
 }
 
 absl::StatusOr<RunOutcome> Run::Execute() {
-  const spec::TrainingSpec& t = spec_.training;
+  const config::TrainingSpec& t = spec_.training;
   threads_ = options_.max_threads > 0 ? std::min(t.threads, options_.max_threads) : t.threads;
   torch::set_num_threads(threads_);
   SetBlasThreads(threads_);
@@ -566,7 +566,7 @@ absl::StatusOr<RunOutcome> Run::Execute() {
     }
     progress_step0_ = step;
   }
-  absl::Status st = WriteText(out / "spec.yaml", spec::ResolvedSpecYaml(spec_));
+  absl::Status st = WriteText(out / "spec.yaml", config::ResolvedSpecYaml(spec_));
   if (!st.ok()) return st;
   std::ofstream metrics(out / "metrics.jsonl.tmp", std::ios::trunc);
   for (const auto& l : metric_lines) metrics << l << "\n";
@@ -637,16 +637,16 @@ absl::StatusOr<RunOutcome> Run::Execute() {
   const double seconds = wall_before_ + std::chrono::duration<double>(std::chrono::steady_clock::now() - start_).count();
   json result = last_eval_;
   result["steps"] = step;
-  result["seconds"] = seconds;
+  result["wall_s"] = seconds;  // the whole run, past the last evaluation's wall_s
   result["examples_per_s"] = seconds > 0 ? static_cast<double>(step) * t.batch_size / seconds : 0.0;
   result["peak_rss_mb"] = PeakRssMb();
   result["first_step_s"] = first_step_s_;
-  result["step_seconds"] = step_seconds_;
+  result["train_steps_s"] = step_seconds_;
   result["provenance"] = Provenance();
   // Controls (issue 7 section 2): step-0 IIA, the random-units control, the confusion table and
   // failures.jsonl, all on the final network and the same held-out triples.
   if (!step0_eval_.is_null()) {
-    result["iia_step0"] = json{{"iia_test", step0_eval_["iia_test"]}, {"iia_changed_test", step0_eval_["iia_changed_test"]}};
+    result["control_untrained_network"] = json{{"iia_held_out", step0_eval_["iia_held_out"]}, {"iia_changed_held_out", step0_eval_["iia_changed_held_out"]}};
   }
   std::vector<std::string> failures;
   json controls = FinalControls(job_, *net_, labels_, eval_, &failures);
@@ -659,8 +659,8 @@ absl::StatusOr<RunOutcome> Run::Execute() {
   if (!st.ok()) return st;
   st = WriteText(out / "result.json", result.dump(2) + "\n");
   if (!st.ok()) return st;
-  if (!options_.probe_path.empty()) {
-    st = WriteProbe();
+  if (!options_.logits_dump_path.empty()) {
+    st = WriteLogitsDump();
     if (!st.ok()) return st;
   }
   outcome.step = step;
@@ -669,7 +669,7 @@ absl::StatusOr<RunOutcome> Run::Execute() {
 
 }  // namespace
 
-absl::StatusOr<RunOutcome> Train(const spec::ResolvedJob& job, const RunOptions& options) {
+absl::StatusOr<RunOutcome> Train(const config::ResolvedJob& job, const RunOptions& options) {
   try {
     Run run(job, options);
     return run.Execute();

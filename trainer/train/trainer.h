@@ -13,7 +13,7 @@
 #include <string>
 
 #include "absl/status/statusor.h"
-#include "trainer/spec/spec.h"
+#include "configs/reader/spec.h"
 
 namespace graft::train {
 
@@ -29,11 +29,11 @@ struct RunOptions {
   // place; anything else gets one line per evaluation.
   std::ostream* progress = nullptr;
   bool progress_is_terminal = false;
-  // Non-empty: after training, write this JSON file with the first `probe_triples` evaluation
+  // Non-empty: after training, write this JSON file with the first `logits_dump_triples` evaluation
   // triples (input value indices of base and source, set name) and the network's base and
   // intervened logits, so an independent implementation can recompute them.
-  std::string probe_path;
-  int probe_triples = 64;
+  std::string logits_dump_path;
+  int logits_dump_triples = 64;
   // Called after each evaluation with its metrics.jsonl line (no newline), after the line is
   // written. The worker's serve loop reports it to the coordinator.
   std::function<void(int64_t step, const std::string& metrics_line)> on_evaluation;
@@ -55,7 +55,7 @@ struct RunOutcome {
 // Trains `job`. Failures: InvalidArgument for a checkpoint that does not belong to this spec,
 // Internal for a non-finite loss (the message names the step; the last good checkpoint is
 // kept), other codes for I/O errors naming the file.
-absl::StatusOr<RunOutcome> Train(const spec::ResolvedJob& job, const RunOptions& options);
+absl::StatusOr<RunOutcome> Train(const config::ResolvedJob& job, const RunOptions& options);
 
 }  // namespace graft::train
 

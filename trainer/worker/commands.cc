@@ -1,6 +1,6 @@
 #include "trainer/worker/commands.h"
 
-#include "trainer/spec/spec.h"
+#include "configs/reader/spec.h"
 #include "trainer/train/analysis.h"
 #include "trainer/train/trainer.h"
 
@@ -8,18 +8,18 @@ namespace graft::worker {
 
 int CheckCommand(const std::string& config, const std::vector<std::string>& overrides, std::ostream& out,
                  std::ostream& err) {
-  auto job = spec::LoadJob(config, overrides);
+  auto job = config::LoadJob(config, overrides);
   if (!job.ok()) {
     err << job.status().message() << "\n";
     return absl::IsNotFound(job.status()) ? kExitFailure : kExitInvalidConfig;
   }
-  out << spec::Summarize(*job);
+  out << config::Summarize(*job);
   return kExitOk;
 }
 
 int RunCommand(const RunArgs& args, const std::atomic<bool>* stop, std::ostream& out, std::ostream& err,
                bool err_is_terminal) {
-  auto job = spec::LoadJob(args.config, args.overrides);
+  auto job = config::LoadJob(args.config, args.overrides);
   if (!job.ok()) {
     err << job.status().message() << "\n";
     return absl::IsNotFound(job.status()) ? kExitFailure : kExitInvalidConfig;
@@ -31,7 +31,7 @@ int RunCommand(const RunArgs& args, const std::atomic<bool>* stop, std::ostream&
   options.stop_requested = stop;
   options.progress = &err;
   options.progress_is_terminal = err_is_terminal;
-  options.probe_path = args.probe_path;
+  options.logits_dump_path = args.logits_dump_path;
   auto outcome = train::Train(*job, options);
   if (!outcome.ok()) {
     err << "graft-worker: " << outcome.status().message() << "\n";
@@ -71,10 +71,10 @@ int RunCommand(const RunArgs& args, const std::atomic<bool>* stop, std::ostream&
 
 namespace {
 
-using AnalysisFn = absl::StatusOr<std::string> (*)(const spec::ResolvedJob&, const train::AnalysisOptions&);
+using AnalysisFn = absl::StatusOr<std::string> (*)(const config::ResolvedJob&, const train::AnalysisOptions&);
 
 int Analyse(const AnalyseArgs& args, AnalysisFn fn, std::ostream& out, std::ostream& err) {
-  auto job = spec::LoadJob(args.config, args.overrides);
+  auto job = config::LoadJob(args.config, args.overrides);
   if (!job.ok()) {
     err << job.status().message() << "\n";
     return absl::IsNotFound(job.status()) ? kExitFailure : kExitInvalidConfig;

@@ -29,7 +29,7 @@ struct RunArgs {
   std::string out_dir;
   std::string resume_dir;
   int64_t stop_after_step = -1;
-  std::string probe_path;
+  std::string logits_dump_path;
 };
 
 // `graft-worker run CONFIG --out DIR [--set k=v]... [--resume DIR]`: trains the job, writing

@@ -36,7 +36,7 @@ int main(int argc, char** argv) {
   run->add_option("--resume", run_args.resume_dir, "Continue from the checkpoint in this run directory");
   run->add_option("--stop-after-step", run_args.stop_after_step,
                   "Stop as if interrupted after this step, with a checkpoint (for resume drills)");
-  run->add_option("--probe", run_args.probe_path,
+  run->add_option("--dump-logits", run_args.logits_dump_path,
                   "Also write the first evaluation triples with base and intervened logits to this JSON file");
 
   // evaluate, scan and das share their arguments.

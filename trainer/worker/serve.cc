@@ -16,7 +16,7 @@
 #include "absl/strings/str_cat.h"
 #include "graft/v1/graft.grpc.pb.h"
 #include "proto/sha256.h"
-#include "trainer/spec/spec.h"
+#include "configs/reader/spec.h"
 #include "trainer/train/trainer.h"
 #include "trainer/worker/commands.h"
 
@@ -99,7 +99,7 @@ class JobRun {
   std::ostream& err_;
 
   std::mutex mu_;
-  std::deque<v1::MetricPoint> pending_;  // guarded by mu_: not yet acknowledged
+  std::deque<v1::Point> pending_;  // guarded by mu_: not yet acknowledged
   std::atomic<int64_t> step_{0};
   std::atomic<bool> halt_{false};       // tells the trainer to checkpoint and stop
   std::atomic<bool> cancelled_{false};  // the coordinator said stop
@@ -263,7 +263,7 @@ void JobRun::Execute() {
   fs::create_directories(dir, ec);
   err_ << "graft-worker: leased " << lease_.job_id() << " attempt " << lease_.attempt()
        << (lease_.resume_step() > 0 ? absl::StrCat(", resuming from step ", lease_.resume_step()) : "") << "\n";
-  auto job = spec::LoadJobFromText(lease_.spec_yaml(), "spec.yaml", {});
+  auto job = config::LoadJobFromText(lease_.spec_yaml(), "spec.yaml", {});
   if (!job.ok()) {
     v1::FinishJobRequest r;
     r.set_failed_reason(absl::StrCat("the worker could not load the spec: ", job.status().message()));
@@ -287,7 +287,7 @@ void JobRun::Execute() {
   options.stop_requested = &halt_;
   options.max_threads = args_.threads;
   options.on_evaluation = [this](int64_t step, const std::string& line) {
-    v1::MetricPoint p;
+    v1::Point p;
     p.set_step(step);
     p.set_attempt(lease_.attempt());
     p.set_metrics_json(line);

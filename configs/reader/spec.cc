@@ -1,4 +1,4 @@
-#include "trainer/spec/spec.h"
+#include "configs/reader/spec.h"
 
 #include <algorithm>
 #include <cerrno>
@@ -15,9 +15,9 @@
 #include "absl/strings/str_cat.h"
 #include "absl/strings/str_join.h"
 #include "absl/strings/str_split.h"
-#include "trainer/spec/suggest.h"
+#include "configs/reader/suggest.h"
 
-namespace graft::spec {
+namespace graft::config {
 namespace {
 
 using causal::DomainDecl;
@@ -545,7 +545,7 @@ void ReadScan(Reader& r, const ConfigNode* sc, JobSpec& spec, Positions& pos) {
   ScanSpec& s = spec.scan;
   s.present = true;
   pos.scan_block = sc->loc;
-  r.CheckKeys(*sc, "scan", {"layers", "block", "stride", "random_subsets", "triples"});
+  r.CheckKeys(*sc, "scan", {"layers", "block", "stride", "random_subsets", "pairs"});
   const int layers = static_cast<int>(spec.network.hidden.size());
   if (const ConfigNode* l = sc->Find("layers")) {
     std::vector<const ConfigNode*> items;
@@ -579,8 +579,8 @@ void ReadScan(Reader& r, const ConfigNode* sc, JobSpec& spec, Positions& pos) {
   if (const ConfigNode* n = sc->Find("random_subsets")) {
     if (auto v = r.Int(*n, "scan.random_subsets", 0, 1000)) s.random_subsets = static_cast<int>(*v);
   }
-  if (const ConfigNode* n = sc->Find("triples")) {
-    if (auto v = r.Int(*n, "scan.triples", 1, int64_t{1} << 24)) s.triples = *v;
+  if (const ConfigNode* n = sc->Find("pairs")) {
+    if (auto v = r.Int(*n, "scan.pairs", 1, int64_t{1} << 24)) s.pairs = *v;
   }
   for (int l = 0; l < layers; ++l) {
     if (!s.layers.empty() && std::find(s.layers.begin(), s.layers.end(), l) == s.layers.end()) continue;
@@ -1083,7 +1083,7 @@ std::string ResolvedSpecYaml(const JobSpec& spec) {
     Put(sc, "block", Scalar(absl::StrCat(spec.scan.block)));
     Put(sc, "stride", Scalar(absl::StrCat(spec.scan.stride)));
     Put(sc, "random_subsets", Scalar(absl::StrCat(spec.scan.random_subsets)));
-    Put(sc, "triples", Scalar(absl::StrCat(spec.scan.triples)));
+    Put(sc, "pairs", Scalar(absl::StrCat(spec.scan.pairs)));
     Put(root, "scan", std::move(sc));
   }
   if (spec.das.present) {
@@ -1173,4 +1173,4 @@ std::string Summarize(const ResolvedJob& job) {
   return out.str();
 }
 
-}  // namespace graft::spec
+}  // namespace graft::config

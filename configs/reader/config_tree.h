@@ -1,8 +1,8 @@
 // A YAML document as a tree that remembers where every node came from (file:line:column, or
 // the Nth --set override), keeps map entries in order and reports duplicate keys, which
 // yaml-cpp's Node API would silently drop. Thread-safety: plain values; no shared state.
-#ifndef GRAFT_TRAINER_SPEC_CONFIG_TREE_H_
-#define GRAFT_TRAINER_SPEC_CONFIG_TREE_H_
+#ifndef GRAFT_CONFIGS_READER_CONFIG_TREE_H_
+#define GRAFT_CONFIGS_READER_CONFIG_TREE_H_
 
 #include <string>
 #include <utility>
@@ -10,7 +10,7 @@
 
 #include "absl/status/statusor.h"
 
-namespace graft::spec {
+namespace graft::config {
 
 // Where a node was written. `source` is a file path or "--set #N"; line and column are 1-based.
 struct Location {
@@ -64,6 +64,6 @@ std::string FormatDouble(double x);
 // Writes the tree back as YAML (block style, keys in order).
 std::string ToYaml(const ConfigNode& node);
 
-}  // namespace graft::spec
+}  // namespace graft::config
 
-#endif  // GRAFT_TRAINER_SPEC_CONFIG_TREE_H_
+#endif  // GRAFT_CONFIGS_READER_CONFIG_TREE_H_

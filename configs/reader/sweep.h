@@ -2,8 +2,8 @@
 // axes, its `together` axes (keys that vary in step), its random `sample` draws and its seeds.
 // The whole sweep is validated before anything is stored; one bad combination rejects it,
 // naming the combination. Torch-free. Thread-safety: pure functions.
-#ifndef GRAFT_TRAINER_SPEC_SWEEP_H_
-#define GRAFT_TRAINER_SPEC_SWEEP_H_
+#ifndef GRAFT_CONFIGS_READER_SWEEP_H_
+#define GRAFT_CONFIGS_READER_SWEEP_H_
 
 #include <cstdint>
 #include <string>
@@ -11,10 +11,10 @@
 #include <vector>
 
 #include "absl/status/statusor.h"
-#include "trainer/spec/config_tree.h"
-#include "trainer/spec/spec.h"
+#include "configs/reader/config_tree.h"
+#include "configs/reader/spec.h"
 
-namespace graft::spec {
+namespace graft::config {
 
 struct PlannedJob {
   // The job's name: the config's name, then the varied values (last key segment = value,
@@ -42,6 +42,6 @@ absl::StatusOr<SweepPlan> PlanFromText(const std::string& text, const std::strin
 // A short summary of a plan for `check`: the number of jobs and their names.
 std::string SummarizePlan(const SweepPlan& plan);
 
-}  // namespace graft::spec
+}  // namespace graft::config
 
-#endif  // GRAFT_TRAINER_SPEC_SWEEP_H_
+#endif  // GRAFT_CONFIGS_READER_SWEEP_H_

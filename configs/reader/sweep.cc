@@ -1,4 +1,4 @@
-#include "trainer/spec/sweep.h"
+#include "configs/reader/sweep.h"
 
 #include <cmath>
 #include <cstdio>
@@ -13,7 +13,7 @@
 #include "absl/strings/str_split.h"
 #include "trainer/causal/rng.h"
 
-namespace graft::spec {
+namespace graft::config {
 namespace {
 
 // One axis of the product: each point sets several keys at once.
@@ -384,4 +384,4 @@ std::string SummarizePlan(const SweepPlan& plan) {
   return out.str();
 }
 
-}  // namespace graft::spec
+}  // namespace graft::config

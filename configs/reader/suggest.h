@@ -1,11 +1,11 @@
 // "Did you mean ...?": the nearest valid name to a misspelt one. Pure functions.
-#ifndef GRAFT_TRAINER_SPEC_SUGGEST_H_
-#define GRAFT_TRAINER_SPEC_SUGGEST_H_
+#ifndef GRAFT_CONFIGS_READER_SUGGEST_H_
+#define GRAFT_CONFIGS_READER_SUGGEST_H_
 
 #include <string>
 #include <vector>
 
-namespace graft::spec {
+namespace graft::config {
 
 // Edit distance with adjacent transpositions (optimal string alignment): insertions,
 // deletions, substitutions and swaps of two neighbours each cost 1.
@@ -15,6 +15,6 @@ int EditDistance(const std::string& a, const std::string& b);
 // most max(1, |word| / 3)), else "". Ties go to the earlier candidate.
 std::string Nearest(const std::string& word, const std::vector<std::string>& candidates);
 
-}  // namespace graft::spec
+}  // namespace graft::config
 
-#endif  // GRAFT_TRAINER_SPEC_SUGGEST_H_
+#endif  // GRAFT_CONFIGS_READER_SUGGEST_H_

@@ -3,8 +3,8 @@
 // resolved into a compiled causal model, an input split and intervention sets. Torch-free, so
 // the client and the coordinator give exactly the worker's messages.
 // Thread-safety: plain values; a ResolvedJob is immutable after LoadJob returns.
-#ifndef GRAFT_TRAINER_SPEC_SPEC_H_
-#define GRAFT_TRAINER_SPEC_SPEC_H_
+#ifndef GRAFT_CONFIGS_READER_SPEC_H_
+#define GRAFT_CONFIGS_READER_SPEC_H_
 
 #include <cstdint>
 #include <memory>
@@ -13,9 +13,9 @@
 
 #include "absl/status/statusor.h"
 #include "trainer/causal/model.h"
-#include "trainer/spec/config_tree.h"
+#include "configs/reader/config_tree.h"
 
-namespace graft::spec {
+namespace graft::config {
 
 enum class EmbeddingInit { kLearned, kFixedRandom };
 enum class Activation { kRelu, kGelu, kTanh };
@@ -76,7 +76,8 @@ struct ScanSpec {
   int block = 0;                // units per candidate; 0 (default): the variable's aligned unit count
   int stride = 0;               // step between block starts; 0 (default): the block size
   int random_subsets = 0;       // extra candidates per layer: random unit sets of the block size
-  int64_t triples = 1024;       // budget: evaluation triples per candidate (trade-off: time vs interval width)
+  int64_t pairs = 1024;         // budget: held-out (base, source) pairs per candidate, each evaluated with
+                                // the variable alone (trade-off: time vs interval width)
 };
 
 // The `das:` block: distributed alignment search (Geiger, Wu et al. 2023) with the network
@@ -142,6 +143,6 @@ const char* ToString(Activation v);
 const char* ToString(OptimizerType v);
 const char* ToString(SourceMode v);
 
-}  // namespace graft::spec
+}  // namespace graft::config
 
-#endif  // GRAFT_TRAINER_SPEC_SPEC_H_
+#endif  // GRAFT_CONFIGS_READER_SPEC_H_

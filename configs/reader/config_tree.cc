@@ -1,4 +1,4 @@
-#include "trainer/spec/config_tree.h"
+#include "configs/reader/config_tree.h"
 
 #include <cmath>
 #include <cstdio>
@@ -15,7 +15,7 @@
 #include "yaml-cpp/eventhandler.h"
 #include "yaml-cpp/yaml.h"
 
-namespace graft::spec {
+namespace graft::config {
 namespace {
 
 // Builds a ConfigNode tree from yaml-cpp's parse events.
@@ -389,4 +389,4 @@ std::string ToYaml(const ConfigNode& node) {
   return out.str();
 }
 
-}  // namespace graft::spec
+}  // namespace graft::config

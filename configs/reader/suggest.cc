@@ -1,8 +1,8 @@
-#include "trainer/spec/suggest.h"
+#include "configs/reader/suggest.h"
 
 #include <algorithm>
 
-namespace graft::spec {
+namespace graft::config {
 
 int EditDistance(const std::string& a, const std::string& b) {
   // d[i][j]: distance between the first i characters of a and the first j of b.
@@ -35,4 +35,4 @@ std::string Nearest(const std::string& word, const std::vector<std::string>& can
   return best;
 }
 
-}  // namespace graft::spec
+}  // namespace graft::config
