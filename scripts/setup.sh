@@ -11,6 +11,7 @@ PACKAGES=(
   libmuparser-dev libsqlite3-dev nlohmann-json3-dev libcli11-dev libssl-dev
   python3 python3-numpy python3-scipy python3-statsmodels python3-torch python3-yaml
   python3-grpcio python3-grpc-tools
+  slurmctld slurmd slurm-client munge
 )
 
 missing=()
