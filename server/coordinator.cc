@@ -316,13 +316,10 @@ absl::StatusOr<v1::ServerInfo> Coordinator::Info() {
     if (!counts.ok()) return counts.status();
     info.set_queued_jobs((*counts)[JobState::kQueued]);
     info.set_running_jobs((*counts)[JobState::kRunning]);
-    auto workers = store_->Workers();
-    if (!workers.ok()) return workers.status();
-    const int64_t now = clock_->NowMs();
+    auto fleet = FleetLocked(false);
+    if (!fleet.ok()) return fleet.status();
     int64_t live = 0;
-    for (const auto& w : *workers) {
-      if (now - w.last_seen_ms <= 2 * options_.lease_ms) ++live;
-    }
+    for (const auto& w : *fleet) live += w.state() == v1::WORKER_STATE_PENDING ? 0 : 1;
     info.set_workers(live);
   }
   int64_t bytes = 0;
@@ -503,10 +500,20 @@ absl::StatusOr<v1::RegisterWorkerResponse> Coordinator::Register(const Principal
   w.cores = request.cores();
   w.threads = request.threads();
   w.version = request.version();
+  w.slurm_job_id = request.slurm_job_id();
+  w.slurm_array_job_id = request.slurm_array_job_id();
+  w.slurm_array_task_id = request.slurm_array_task_id();
   w.registered_ms = w.last_seen_ms = clock_->NowMs();
   absl::Status st = store_->PutWorker(w);
   if (!st.ok()) return st;
-  log_->info("worker {} registered ({} cores, {} threads, version {})", w.id, w.cores, w.threads, w.version);
+  if (!w.slurm_array_job_id.empty()) pending_.erase(absl::StrCat(w.slurm_array_job_id, "_", w.slurm_array_task_id));
+  if (!w.slurm_job_id.empty()) pending_.erase(w.slurm_job_id);
+  log_->info("worker {} registered ({} cores, {} threads, version {}{})", w.id, w.cores, w.threads, w.version,
+             w.slurm_job_id.empty() ? ""
+             : w.slurm_array_job_id.empty()
+                 ? absl::StrCat(", Slurm job ", w.slurm_job_id)
+                 : absl::StrCat(", Slurm job ", w.slurm_job_id, " = array task ", w.slurm_array_job_id, "_",
+                                w.slurm_array_task_id));
   v1::RegisterWorkerResponse out;
   out.set_worker_id(w.id);
   out.set_lease_seconds(std::max<int64_t>(1, options_.lease_ms / 1000));
@@ -572,17 +579,14 @@ void Coordinator::Lease(const v1::LeaseJobRequest& request, LeaseDone done) {
     if (stopping_) {
       deferred.push_back([done] { done(absl::UnavailableError("the coordinator is shutting down"), v1::LeaseJobResponse()); });
     } else {
-      // Seen: renew the worker's last_seen.
-      auto workers = store_->Workers();
+      // Seen: renew the worker's last_seen. A worker that deregistered must register again.
+      auto worker = store_->GetWorker(request.worker_id());
       bool known = false;
-      if (workers.ok()) {
-        for (auto& w : *workers) {
-          if (w.id == request.worker_id()) {
-            known = true;
-            w.last_seen_ms = clock_->NowMs();
-            (void)store_->PutWorker(w);
-          }
-        }
+      if (worker.ok() && worker->has_value() && (*worker)->left_ms == 0) {
+        known = true;
+        (*worker)->last_seen_ms = clock_->NowMs();
+        seen_ms_.erase(request.worker_id());
+        (void)store_->PutWorker(**worker);
       }
       if (!known) {
         deferred.push_back([done, id = request.worker_id()] {
@@ -623,6 +627,7 @@ absl::StatusOr<v1::ReportResponse> Coordinator::Report(const v1::ReportRequest& 
     std::lock_guard<std::mutex> lock(mu_);
     auto job = LoadLeased(request.job_id(), request.worker_id(), request.attempt(), /*allow_cancelled=*/true);
     if (!job.ok()) return job.status();
+    Seen(request.worker_id());
     std::vector<PointRecord> points;
     for (const auto& p : request.points()) {
       PointRecord r;
@@ -741,9 +746,10 @@ absl::Status Coordinator::Finish(const v1::FinishJobRequest& request) {
     const bool stopped = request.outcome_case() == v1::FinishJobRequest::kStoppedReason;
     auto job = LoadLeased(request.job_id(), request.worker_id(), request.attempt(), /*allow_cancelled=*/true);
     if (!job.ok()) return job.status();
+    Seen(request.worker_id());
     if (job->state == JobState::kCancelled && !stopped) {
       // Finished just as it was cancelled: the cancellation stands.
-      job->worker_id.clear();
+      CountFinished(request.worker_id());
       absl::Status st = store_->UpdateJob(*job);
       if (!st.ok()) return st;
       PublishState(*job, deferred);
@@ -777,7 +783,12 @@ absl::Status Coordinator::Finish(const v1::FinishJobRequest& request) {
         default:
           return absl::InvalidArgumentError("FinishJob needs an outcome");
       }
-      job->worker_id.clear();
+      // An ended job keeps the worker that ended it (Job.worker_id); a queued one has none.
+      if (job->state == JobState::kQueued) {
+        job->worker_id.clear();
+      } else {
+        CountFinished(request.worker_id());
+      }
       job->lease_expires_ms = 0;
       absl::Status st = store_->UpdateJob(*job);
       if (!st.ok()) return st;
@@ -787,6 +798,132 @@ absl::Status Coordinator::Finish(const v1::FinishJobRequest& request) {
   }
   for (auto& f : deferred) f();
   return absl::OkStatus();
+}
+
+void Coordinator::CountFinished(const std::string& worker_id) {
+  auto w = store_->GetWorker(worker_id);
+  if (!w.ok() || !w->has_value()) return;
+  (*w)->jobs_finished += 1;
+  (*w)->last_seen_ms = std::max((*w)->last_seen_ms, clock_->NowMs());
+  absl::Status st = store_->PutWorker(**w);
+  if (!st.ok()) log_->warn("recording a finished job of {} failed: {}", worker_id, st.ToString());
+}
+
+absl::Status Coordinator::Deregister(const v1::DeregisterWorkerRequest& request) {
+  std::lock_guard<std::mutex> lock(mu_);
+  auto w = store_->GetWorker(request.worker_id());
+  if (!w.ok()) return w.status();
+  if (!w->has_value()) return absl::NotFoundError(absl::StrCat("worker '", request.worker_id(), "' is not registered"));
+  if ((*w)->left_ms == 0) {
+    (*w)->left_ms = (*w)->last_seen_ms = clock_->NowMs();
+    seen_ms_.erase(request.worker_id());
+    absl::Status st = store_->PutWorker(**w);
+    if (!st.ok()) return st;
+    log_->info("worker {} left: {} ({} jobs finished)", request.worker_id(),
+               request.reason().empty() ? "no reason given" : request.reason(), (*w)->jobs_finished);
+  }
+  return absl::OkStatus();
+}
+
+absl::StatusOr<std::vector<v1::Worker>> Coordinator::FleetLocked(bool include_gone) {
+  auto workers = store_->Workers();
+  if (!workers.ok()) return workers.status();
+  JobFilter running;
+  running.state = JobState::kRunning;
+  auto jobs = store_->ListJobs(running, 0, 1 << 20);
+  if (!jobs.ok()) return jobs.status();
+  std::map<std::string, const JobRecord*> holding;
+  for (const auto& j : *jobs) holding[j.worker_id] = &j;
+  const int64_t now = clock_->NowMs();
+  std::vector<v1::Worker> out;
+  for (const auto& w : *workers) {
+    v1::Worker p;
+    p.set_id(w.id);
+    p.set_host(w.host);
+    p.set_cores(w.cores);
+    p.set_threads(w.threads);
+    p.set_version(w.version);
+    p.set_slurm_job_id(w.slurm_job_id);
+    p.set_slurm_array_job_id(w.slurm_array_job_id);
+    p.set_slurm_array_task_id(w.slurm_array_task_id);
+    p.set_registered_ms(w.registered_ms);
+    int64_t seen = w.last_seen_ms;
+    if (auto it = seen_ms_.find(w.id); it != seen_ms_.end()) seen = std::max(seen, it->second);
+    p.set_last_seen_ms(seen);
+    p.set_jobs_finished(w.jobs_finished);
+    auto held = holding.find(w.id);
+    if (w.left_ms > 0) {
+      p.set_state(v1::WORKER_STATE_GONE);
+      p.set_gone_reason("left");
+    } else if (held != holding.end()) {
+      p.set_state(v1::WORKER_STATE_TRAINING);
+      p.set_job_id(JobName(held->second->id));
+      p.set_step(held->second->step);
+    } else if (now - seen > 2 * options_.lease_ms) {
+      p.set_state(v1::WORKER_STATE_GONE);
+      p.set_gone_reason(absl::StrCat("not seen for ", (now - seen) / 1000, " s"));
+    } else {
+      p.set_state(v1::WORKER_STATE_IDLE);
+    }
+    if (p.state() == v1::WORKER_STATE_GONE && !include_gone) continue;
+    out.push_back(std::move(p));
+  }
+  for (const auto& [task, submitted] : pending_) {
+    v1::Worker p;
+    p.set_id("slurm-" + task);
+    p.set_state(v1::WORKER_STATE_PENDING);
+    const size_t us = task.find('_');
+    p.set_slurm_array_job_id(task.substr(0, us));
+    if (us != std::string::npos) p.set_slurm_array_task_id(task.substr(us + 1));
+    p.set_registered_ms(submitted);
+    out.push_back(std::move(p));
+  }
+  return out;
+}
+
+absl::StatusOr<v1::ListWorkersResponse> Coordinator::ListWorkers(bool include_gone) {
+  std::lock_guard<std::mutex> lock(mu_);
+  auto fleet = FleetLocked(include_gone);
+  if (!fleet.ok()) return fleet.status();
+  v1::ListWorkersResponse out;
+  for (auto& w : *fleet) *out.add_workers() = std::move(w);
+  return out;
+}
+
+Coordinator::FleetDemand Coordinator::Demand() {
+  std::lock_guard<std::mutex> lock(mu_);
+  FleetDemand d;
+  auto counts = store_->CountByState();
+  if (counts.ok()) d.queued_jobs = (*counts)[JobState::kQueued];
+  auto fleet = FleetLocked(false);
+  if (fleet.ok()) {
+    for (const auto& w : *fleet) {
+      if (w.state() == v1::WORKER_STATE_IDLE) ++d.idle_workers;
+      if (w.state() == v1::WORKER_STATE_IDLE || w.state() == v1::WORKER_STATE_TRAINING) ++d.live_workers;
+      if (w.state() == v1::WORKER_STATE_PENDING) ++d.pending_tasks;
+    }
+  }
+  return d;
+}
+
+void Coordinator::AddPending(const std::string& array_job_id, const std::vector<std::string>& task_ids,
+                             int64_t now_ms) {
+  std::lock_guard<std::mutex> lock(mu_);
+  for (const auto& t : task_ids) pending_[absl::StrCat(array_job_id, "_", t)] = now_ms;
+}
+
+std::vector<std::string> Coordinator::PendingTasks() {
+  std::lock_guard<std::mutex> lock(mu_);
+  std::vector<std::string> out;
+  for (const auto& [task, submitted] : pending_) out.push_back(task);
+  return out;
+}
+
+void Coordinator::ForgetPending(const std::vector<std::string>& tasks) {
+  std::lock_guard<std::mutex> lock(mu_);
+  for (const auto& t : tasks) {
+    if (pending_.erase(t) > 0) log_->warn("Slurm task {} ended without registering a worker", t);
+  }
 }
 
 absl::Status Coordinator::RequeueLapsed(Deferred& deferred) {

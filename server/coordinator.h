@@ -90,6 +90,25 @@ class Coordinator {
   // The stored artifact's record (its bytes are in record.path).
   absl::StatusOr<ArtifactRecord> Artifact(const Principal& who, const std::string& job_id, const std::string& name);
   absl::StatusOr<v1::ServerInfo> Info();
+  // The fleet: every registered worker with its state (idle, training JOB at step N, gone),
+  // then the Slurm tasks the launcher submitted that have not registered yet (pending).
+  absl::StatusOr<v1::ListWorkersResponse> ListWorkers(bool include_gone);
+
+  // --- the elastic launcher (server/launcher.h)
+  struct FleetDemand {
+    int64_t queued_jobs = 0;
+    int64_t idle_workers = 0;     // live workers holding no job
+    int64_t live_workers = 0;     // idle or training
+    int64_t pending_tasks = 0;    // submitted to Slurm, not registered yet
+  };
+  FleetDemand Demand();
+  // Records Slurm array tasks just submitted (array job id, task ids) as pending until a worker
+  // registers with them or ForgetPending drops them.
+  void AddPending(const std::string& array_job_id, const std::vector<std::string>& task_ids, int64_t now_ms);
+  // The pending tasks, as "ARRAYJOB_TASK".
+  std::vector<std::string> PendingTasks();
+  // Drops pending tasks that Slurm no longer knows (ended or cancelled without registering).
+  void ForgetPending(const std::vector<std::string>& tasks);
 
   // Watching: `sink` receives the job's current state, then its stored points with step >=
   // from_step, then every later event, in order, until Unwatch or a final state (after which
@@ -110,6 +129,8 @@ class Coordinator {
   using LeaseDone = std::function<void(absl::Status status, const v1::LeaseJobResponse& response)>;
   void Lease(const v1::LeaseJobRequest& request, LeaseDone done);
   absl::StatusOr<v1::ReportResponse> Report(const v1::ReportRequest& request);
+  // The worker leaves: shown as gone from now on. NotFound for an unknown worker.
+  absl::Status Deregister(const v1::DeregisterWorkerRequest& request);
   absl::StatusOr<ArtifactRecord> CheckpointFor(const v1::FetchCheckpointRequest& request);
   absl::StatusOr<std::unique_ptr<Upload>> BeginUpload(const v1::ArtifactHeader& header);
   absl::StatusOr<int64_t> CommitUpload(Upload& upload);
@@ -134,6 +155,12 @@ class Coordinator {
   absl::StatusOr<JobRecord> LoadLeased(const std::string& job_id, const std::string& worker_id, int32_t attempt,
                                        bool allow_cancelled);  // REQUIRES: mu_
   v1::Job ToProto(const JobRecord& job, bool with_texts);
+  // Notes a call from the worker (for `last_seen_ms`). REQUIRES: mu_
+  void Seen(const std::string& worker_id) { seen_ms_[worker_id] = clock_->NowMs(); }
+  // The workers with their states. REQUIRES: mu_
+  absl::StatusOr<std::vector<v1::Worker>> FleetLocked(bool include_gone);
+  // Adds one to the worker's jobs_finished. REQUIRES: mu_
+  void CountFinished(const std::string& worker_id);
   void Publish(const JobRecord& job, const v1::JobEvent& event, bool final_state, Deferred& deferred);  // REQUIRES: mu_
   // True when every job of the sweep has ended. REQUIRES: mu_
   bool SweepOver(const std::string& sweep_id);
@@ -158,6 +185,8 @@ class Coordinator {
   int64_t next_watch_id_ = 1;                    // guarded by mu_
   std::map<int64_t, int64_t> acknowledged_;      // job -> highest stored step this attempt; guarded by mu_
   int64_t next_worker_ = 1;                      // guarded by mu_
+  std::map<std::string, int64_t> seen_ms_;       // worker -> its last call, newer than the store's; guarded by mu_
+  std::map<std::string, int64_t> pending_;       // "ARRAYJOB_TASK" -> submitted_ms; guarded by mu_
   bool stopping_ = false;                        // guarded by mu_
   std::condition_variable wake_;
   std::thread sweeper_;

@@ -70,7 +70,12 @@ struct WorkerRecord {
   int32_t threads = 0;
   std::string version;
   int64_t registered_ms = 0;
-  int64_t last_seen_ms = 0;
+  int64_t last_seen_ms = 0;       // its last call (register, lease, report, finish)
+  // From the worker's environment when it runs as a Slurm job ("" otherwise): SLURM_JOB_ID,
+  // SLURM_ARRAY_JOB_ID and SLURM_ARRAY_TASK_ID.
+  std::string slurm_job_id, slurm_array_job_id, slurm_array_task_id;
+  int64_t jobs_finished = 0;      // jobs it ended: succeeded, failed, or stopped after a cancel
+  int64_t left_ms = 0;            // when it said it was leaving; 0: it has not
 };
 
 struct JobFilter {
@@ -119,7 +124,8 @@ class JobStore {
   virtual absl::StatusOr<std::optional<ArtifactRecord>> GetArtifact(int64_t job_id, const std::string& name) = 0;
 
   virtual absl::Status PutWorker(const WorkerRecord& worker) = 0;  // insert or replace by id
-  virtual absl::StatusOr<std::vector<WorkerRecord>> Workers() = 0;
+  virtual absl::StatusOr<std::vector<WorkerRecord>> Workers() = 0;  // oldest registration first
+  virtual absl::StatusOr<std::optional<WorkerRecord>> GetWorker(const std::string& id) = 0;
 };
 
 enum class Durability { kNormal, kFull };  // SQLite synchronous=NORMAL (survives a killed

@@ -312,6 +312,14 @@ class JobsImpl : public v1::Jobs::CallbackService {
     if (info.ok()) *resp = *info;
     return Reply(ctx, info.status());
   }
+  grpc::ServerUnaryReactor* ListWorkers(grpc::CallbackServerContext* ctx, const v1::ListWorkersRequest* req,
+                                        v1::ListWorkersResponse* resp) override {
+    auto who = Check(*t_, ctx, server::Service::kJobs);
+    if (!who.ok()) return Reply(ctx, who.status());
+    auto r = c_->ListWorkers(req->include_gone());
+    if (r.ok()) *resp = *r;
+    return Reply(ctx, r.status());
+  }
 
  private:
   Coordinator* c_;
@@ -376,6 +384,12 @@ class WorkersImpl : public v1::Workers::CallbackService {
     auto who = Check(*t_, ctx, server::Service::kWorkers);
     if (!who.ok()) return Reply(ctx, who.status());
     return Reply(ctx, c_->Finish(*req));
+  }
+  grpc::ServerUnaryReactor* DeregisterWorker(grpc::CallbackServerContext* ctx, const v1::DeregisterWorkerRequest* req,
+                                             v1::DeregisterWorkerResponse*) override {
+    auto who = Check(*t_, ctx, server::Service::kWorkers);
+    if (!who.ok()) return Reply(ctx, who.status());
+    return Reply(ctx, c_->Deregister(*req));
   }
 
  private:

@@ -79,6 +79,15 @@ CREATE TABLE workers (
   last_seen_ms  INTEGER NOT NULL
 ) WITHOUT ROWID;
 )sql",
+    // Version 2: where a worker runs (its Slurm job, when it is one), how many jobs it ended,
+    // and when it said it was leaving (0: it has not).
+    R"sql(
+ALTER TABLE workers ADD COLUMN slurm_job_id        TEXT    NOT NULL DEFAULT '';
+ALTER TABLE workers ADD COLUMN slurm_array_job_id  TEXT    NOT NULL DEFAULT '';
+ALTER TABLE workers ADD COLUMN slurm_array_task_id TEXT    NOT NULL DEFAULT '';
+ALTER TABLE workers ADD COLUMN jobs_finished       INTEGER NOT NULL DEFAULT 0;
+ALTER TABLE workers ADD COLUMN left_ms             INTEGER NOT NULL DEFAULT 0;
+)sql",
 };
 
 constexpr int kBusyTimeoutMs = 5000;
@@ -223,6 +232,7 @@ class SqliteJobStore final : public JobStore {
   absl::StatusOr<std::optional<ArtifactRecord>> GetArtifact(int64_t job_id, const std::string& name) override;
   absl::Status PutWorker(const WorkerRecord& worker) override;
   absl::StatusOr<std::vector<WorkerRecord>> Workers() override;
+  absl::StatusOr<std::optional<WorkerRecord>> GetWorker(const std::string& id) override;
 
  private:
   // Ends the transaction opened by Begin(): commits on Commit(), otherwise rolls back.
@@ -826,8 +836,9 @@ absl::Status SqliteJobStore::PutWorker(const WorkerRecord& worker) {
   if (worker.id.empty()) return absl::InvalidArgumentError("PutWorker: worker id must not be empty");
   std::lock_guard<std::mutex> lock(mu_);
   absl::StatusOr<Statement> stmt = Prepare(
-      "INSERT OR REPLACE INTO workers (id, host, cores, threads, version, registered_ms, last_seen_ms) "
-      "VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7)",
+      "INSERT OR REPLACE INTO workers (id, host, cores, threads, version, registered_ms, last_seen_ms, "
+      "slurm_job_id, slurm_array_job_id, slurm_array_task_id, jobs_finished, left_ms) "
+      "VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12)",
       "PutWorker");
   if (!stmt.ok()) return stmt.status();
   stmt->BindText(1, worker.id);
@@ -837,30 +848,61 @@ absl::Status SqliteJobStore::PutWorker(const WorkerRecord& worker) {
   stmt->BindText(5, worker.version);
   stmt->BindInt(6, worker.registered_ms);
   stmt->BindInt(7, worker.last_seen_ms);
+  stmt->BindText(8, worker.slurm_job_id);
+  stmt->BindText(9, worker.slurm_array_job_id);
+  stmt->BindText(10, worker.slurm_array_task_id);
+  stmt->BindInt(11, worker.jobs_finished);
+  stmt->BindInt(12, worker.left_ms);
   return stmt->Run();
 }
 
+namespace {
+constexpr char kWorkerColumns[] =
+    "id, host, cores, threads, version, registered_ms, last_seen_ms, slurm_job_id, slurm_array_job_id, "
+    "slurm_array_task_id, jobs_finished, left_ms";
+WorkerRecord ReadWorker(Statement& stmt) {
+  WorkerRecord w;
+  w.id = stmt.Text(0);
+  w.host = stmt.Text(1);
+  w.cores = static_cast<int32_t>(stmt.Int(2));
+  w.threads = static_cast<int32_t>(stmt.Int(3));
+  w.version = stmt.Text(4);
+  w.registered_ms = stmt.Int(5);
+  w.last_seen_ms = stmt.Int(6);
+  w.slurm_job_id = stmt.Text(7);
+  w.slurm_array_job_id = stmt.Text(8);
+  w.slurm_array_task_id = stmt.Text(9);
+  w.jobs_finished = stmt.Int(10);
+  w.left_ms = stmt.Int(11);
+  return w;
+}
+}  // namespace
+
 absl::StatusOr<std::vector<WorkerRecord>> SqliteJobStore::Workers() {
   std::lock_guard<std::mutex> lock(mu_);
-  absl::StatusOr<Statement> stmt = Prepare(
-      "SELECT id, host, cores, threads, version, registered_ms, last_seen_ms FROM workers ORDER BY id", "Workers");
+  absl::StatusOr<Statement> stmt =
+      Prepare(absl::StrCat("SELECT ", kWorkerColumns, " FROM workers ORDER BY registered_ms, id"), "Workers");
   if (!stmt.ok()) return stmt.status();
   std::vector<WorkerRecord> workers;
   for (;;) {
     absl::StatusOr<bool> row = stmt->Step();
     if (!row.ok()) return row.status();
     if (!*row) break;
-    WorkerRecord w;
-    w.id = stmt->Text(0);
-    w.host = stmt->Text(1);
-    w.cores = static_cast<int32_t>(stmt->Int(2));
-    w.threads = static_cast<int32_t>(stmt->Int(3));
-    w.version = stmt->Text(4);
-    w.registered_ms = stmt->Int(5);
-    w.last_seen_ms = stmt->Int(6);
-    workers.push_back(std::move(w));
+    workers.push_back(ReadWorker(*stmt));
   }
   return workers;
+}
+
+absl::StatusOr<std::optional<WorkerRecord>> SqliteJobStore::GetWorker(const std::string& id) {
+  std::lock_guard<std::mutex> lock(mu_);
+  absl::StatusOr<Statement> stmt =
+      Prepare(absl::StrCat("SELECT ", kWorkerColumns, " FROM workers WHERE id = ?1"), "GetWorker");
+  if (!stmt.ok()) return stmt.status();
+  stmt->BindText(1, id);
+  absl::StatusOr<bool> row = stmt->Step();
+  if (!row.ok()) return row.status();
+  if (!*row) return std::optional<WorkerRecord>();
+  return std::optional<WorkerRecord>(ReadWorker(*stmt));
 }
 
 }  // namespace

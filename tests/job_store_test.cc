@@ -603,14 +603,44 @@ TEST_F(SqliteJobStore, PutArtifactReplacesSameName) {
   EXPECT_EQ((*weights)->bytes, 2048);
 }
 
+WorkerRecord Worker(std::string id, std::string host, int32_t cores, int32_t threads, std::string version,
+                    int64_t registered_ms, int64_t last_seen_ms) {
+  WorkerRecord w;
+  w.id = std::move(id);
+  w.host = std::move(host);
+  w.cores = cores;
+  w.threads = threads;
+  w.version = std::move(version);
+  w.registered_ms = registered_ms;
+  w.last_seen_ms = last_seen_ms;
+  return w;
+}
+
 TEST_F(SqliteJobStore, PutWorkerInsertsOrReplacesById) {
-  ASSERT_OK(store_->PutWorker({"w-2", "node-b", 2, 1, "0.1.0", 100, 110}));
-  ASSERT_OK(store_->PutWorker({"w-1", "node-a", 4, 2, "0.1.0", 200, 210}));
-  ASSERT_OK(store_->PutWorker({"w-2", "node-b", 2, 2, "0.2.0", 100, 999}));
+  ASSERT_OK(store_->PutWorker(Worker("w-2", "node-b", 2, 1, "0.1.0", 100, 110)));
+  ASSERT_OK(store_->PutWorker(Worker("w-1", "node-a", 4, 2, "0.1.0", 200, 210)));
+  WorkerRecord slurm = Worker("w-2", "node-b", 2, 2, "0.2.0", 100, 999);
+  slurm.slurm_job_id = "4711";
+  slurm.slurm_array_job_id = "4700";
+  slurm.slurm_array_task_id = "11";
+  slurm.jobs_finished = 3;
+  slurm.left_ms = 1000;
+  ASSERT_OK(store_->PutWorker(slurm));
   absl::StatusOr<std::vector<WorkerRecord>> workers = store_->Workers();
   ASSERT_OK(workers);
   ASSERT_EQ(workers->size(), 2u);
-  const WorkerRecord& w1 = (*workers)[0];
+  // Oldest registration first.
+  const WorkerRecord& w2 = (*workers)[0];
+  EXPECT_EQ(w2.id, "w-2");
+  EXPECT_EQ(w2.threads, 2);
+  EXPECT_EQ(w2.version, "0.2.0");
+  EXPECT_EQ(w2.last_seen_ms, 999);
+  EXPECT_EQ(w2.slurm_job_id, "4711");
+  EXPECT_EQ(w2.slurm_array_job_id, "4700");
+  EXPECT_EQ(w2.slurm_array_task_id, "11");
+  EXPECT_EQ(w2.jobs_finished, 3);
+  EXPECT_EQ(w2.left_ms, 1000);
+  const WorkerRecord& w1 = (*workers)[1];
   EXPECT_EQ(w1.id, "w-1");
   EXPECT_EQ(w1.host, "node-a");
   EXPECT_EQ(w1.cores, 4);
@@ -618,11 +648,16 @@ TEST_F(SqliteJobStore, PutWorkerInsertsOrReplacesById) {
   EXPECT_EQ(w1.version, "0.1.0");
   EXPECT_EQ(w1.registered_ms, 200);
   EXPECT_EQ(w1.last_seen_ms, 210);
-  const WorkerRecord& w2 = (*workers)[1];
-  EXPECT_EQ(w2.id, "w-2");
-  EXPECT_EQ(w2.threads, 2);
-  EXPECT_EQ(w2.version, "0.2.0");
-  EXPECT_EQ(w2.last_seen_ms, 999);
+  EXPECT_EQ(w1.slurm_job_id, "");
+  EXPECT_EQ(w1.jobs_finished, 0);
+  EXPECT_EQ(w1.left_ms, 0);
+  absl::StatusOr<std::optional<WorkerRecord>> one = store_->GetWorker("w-2");
+  ASSERT_OK(one);
+  ASSERT_TRUE(one->has_value());
+  EXPECT_EQ((*one)->slurm_array_task_id, "11");
+  absl::StatusOr<std::optional<WorkerRecord>> none = store_->GetWorker("w-9");
+  ASSERT_OK(none);
+  EXPECT_FALSE(none->has_value());
 }
 
 TEST_F(SqliteJobStore, ReopenFindsEverything) {
@@ -640,7 +675,7 @@ TEST_F(SqliteJobStore, ReopenFindsEverything) {
       job.id = *id;
       ASSERT_OK(store->PutPoints(job.id, {{1, 1, "{\"a\":1}"}, {2, 1, "{\"a\":2}"}}));
       ASSERT_OK(store->PutArtifact({job.id, "weights.pt", "jobs/1/weights.pt", 7, "00ff", 2, 1}));
-      ASSERT_OK(store->PutWorker({"w-1", "node-a", 2, 1, "0.1.0", 5, 6}));
+      ASSERT_OK(store->PutWorker(Worker("w-1", "node-a", 2, 1, "0.1.0", 5, 6)));
     }
     std::unique_ptr<JobStore> store = OpenOrDie(path, durability);
     ASSERT_NE(store, nullptr);
