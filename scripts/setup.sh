@@ -8,7 +8,7 @@ PACKAGES=(
   libtorch-dev libgloo-dev libopenblas0-pthread
   libgrpc++-dev protobuf-compiler-grpc libprotobuf-dev protobuf-compiler
   libspdlog-dev libyaml-cpp-dev libgtest-dev libgmock-dev
-  libmuparser-dev libsqlite3-dev nlohmann-json3-dev libcli11-dev libssl-dev
+  libmuparser-dev libsqlite3-dev nlohmann-json3-dev libcli11-dev libssl-dev openssl
   python3 python3-numpy python3-scipy python3-statsmodels python3-torch python3-yaml
   python3-grpcio python3-grpc-tools
   slurmctld slurmd slurm-client munge

@@ -1,5 +1,7 @@
 // A coordinator (graftd) started as a real process on a loopback port it picks, with its own
 // data dir and tokens, plus helpers to start workers and call the API. For integration tests.
+// Plaintext by default; with a ClusterTls it serves TLS (and optionally mutual TLS) with the
+// certificates of scripts/make-certs.sh, and its stubs and workers dial with them.
 // Not thread-safe: use from one test thread (stubs may be used from several).
 #ifndef GRAFT_TESTS_CLUSTER_H_
 #define GRAFT_TESTS_CLUSTER_H_
@@ -27,10 +29,31 @@ inline constexpr char kBob[] = "bob-token-77a1";
 inline constexpr char kRoot[] = "root-token-c0de";
 inline constexpr char kWorker[] = "worker-token-5e5e";
 
+// TLS for a test cluster. The directory holds scripts/make-certs.sh's files: ca.pem,
+// server.pem, server.key (for localhost, 127.0.0.1 and ::1), client.pem, client.key.
+struct ClusterTls {
+  std::string certs_dir;  // empty: plaintext (the default)
+  bool mutual = false;    // graftd also requires client certificates signed by ca.pem (--client-ca)
+
+  bool enabled() const { return !certs_dir.empty(); }
+  std::string ca() const { return certs_dir + "/ca.pem"; }
+  std::string client_cert() const { return certs_dir + "/client.pem"; }
+  std::string client_key() const { return certs_dir + "/client.key"; }
+};
+
+// Runs scripts/make-certs.sh into `dir` (which must not hold certificates yet) with the extra
+// host names given; fails the current test when it fails. Returns `dir`.
+inline std::string MakeCerts(const std::string& dir, const std::string& hostnames = "") {
+  CommandResult r = RunCommand(SourceDir() + "/scripts/make-certs.sh " + dir + " " + hostnames);
+  EXPECT_EQ(r.exit_code, 0) << r.output;
+  return dir;
+}
+
 // A coordinator with its own data dir and tokens, on a port it picks.
 class Cluster {
  public:
-  explicit Cluster(int lease_seconds = 30, std::vector<std::string> extra_flags = {}) : lease_seconds_(lease_seconds), extra_flags_(std::move(extra_flags)) {
+  explicit Cluster(int lease_seconds = 30, std::vector<std::string> extra_flags = {}, ClusterTls tls = {})
+      : lease_seconds_(lease_seconds), extra_flags_(std::move(extra_flags)), tls_(std::move(tls)) {
     std::ostringstream tokens;
     for (auto [token, name, role] : {std::tuple{kAlice, "alice", "user"}, std::tuple{kBob, "bob", "user"},
                                      std::tuple{kRoot, "root", "admin"}, std::tuple{kWorker, "node1", "worker"}}) {
@@ -47,11 +70,26 @@ class Cluster {
                                      "--data-dir", dir_.path() + "/data", "--tokens-file", dir_.path() + "/tokens.yaml",
                                      "--lease-seconds", std::to_string(lease_seconds_), "--port-file",
                                      dir_.path() + "/port"};
+    if (tls_.enabled()) {
+      argv.insert(argv.end(), {"--tls-cert", tls_.certs_dir + "/server.pem", "--tls-key", tls_.certs_dir + "/server.key"});
+      if (tls_.mutual) argv.insert(argv.end(), {"--client-ca", tls_.ca()});
+    }
     argv.insert(argv.end(), extra_flags_.begin(), extra_flags_.end());
     graftd_ = std::make_unique<ScopedProcess>(argv, dir_.path() + "/graftd.log");
     ASSERT_TRUE(WaitFor([&] { return !ReadPort().empty(); }, 20000)) << ReadFile(dir_.path() + "/graftd.log");
     port_ = std::stoi(ReadPort());
-    channel_ = grpc::CreateChannel("127.0.0.1:" + std::to_string(port_), grpc::InsecureChannelCredentials());
+    std::shared_ptr<grpc::ChannelCredentials> creds = grpc::InsecureChannelCredentials();
+    if (tls_.enabled()) {
+      // The test's own stubs use gRPC's credentials directly, not graft's TLS code under test.
+      grpc::SslCredentialsOptions ssl;
+      ssl.pem_root_certs = ReadFile(tls_.ca());
+      if (tls_.mutual) {
+        ssl.pem_cert_chain = ReadFile(tls_.client_cert());
+        ssl.pem_private_key = ReadFile(tls_.client_key());
+      }
+      creds = grpc::SslCredentials(ssl);
+    }
+    channel_ = grpc::CreateChannel("127.0.0.1:" + std::to_string(port_), creds);
     jobs_ = v1::Jobs::NewStub(channel_);
     workers_ = v1::Workers::NewStub(channel_);
   }
@@ -60,12 +98,25 @@ class Cluster {
     graftd_->Wait(10000);
   }
 
-  std::unique_ptr<ScopedProcess> StartWorker(const std::string& name) {
-    return std::make_unique<ScopedProcess>(
-        std::vector<std::string>{BinaryDir() + "/bin/graft-worker", "serve", "--server",
-                                 "127.0.0.1:" + std::to_string(port_), "--token-file", dir_.path() + "/worker.token",
-                                 "--work-dir", dir_.path() + "/" + name},
-        dir_.path() + "/" + name + ".log");
+  // A `graft-worker serve` process with the cluster's address, worker token and TLS files, plus
+  // `extra_flags`; its output goes to DIR/NAME.log.
+  std::unique_ptr<ScopedProcess> StartWorker(const std::string& name, const std::vector<std::string>& extra_flags = {}) {
+    std::vector<std::string> argv = {BinaryDir() + "/bin/graft-worker", "serve", "--server",
+                                     "127.0.0.1:" + std::to_string(port_), "--token-file", dir_.path() + "/worker.token",
+                                     "--work-dir", dir_.path() + "/" + name};
+    const std::vector<std::string> tls = TlsFlags();
+    argv.insert(argv.end(), tls.begin(), tls.end());
+    argv.insert(argv.end(), extra_flags.begin(), extra_flags.end());
+    return std::make_unique<ScopedProcess>(argv, dir_.path() + "/" + name + ".log");
+  }
+
+  // The flags with which `graft` and `graft-worker serve` dial this cluster: none in plaintext;
+  // --ca-file, and for mutual TLS --cert and --key.
+  std::vector<std::string> TlsFlags() const {
+    if (!tls_.enabled()) return {};
+    std::vector<std::string> flags = {"--ca-file", tls_.ca()};
+    if (tls_.mutual) flags.insert(flags.end(), {"--cert", tls_.client_cert(), "--key", tls_.client_key()});
+    return flags;
   }
 
   std::unique_ptr<grpc::ClientContext> Ctx(const std::string& token, int timeout_ms = 20000) {
@@ -112,6 +163,7 @@ class Cluster {
   v1::Jobs::Stub& jobs() { return *jobs_; }
   v1::Workers::Stub& workers() { return *workers_; }
   std::string Log() const { return ReadFile(dir_.path() + "/graftd.log"); }
+  const ClusterTls& tls() const { return tls_; }
 
  private:
   std::string ReadPort() {
@@ -124,6 +176,7 @@ class Cluster {
   ScopedTempDir dir_;
   int lease_seconds_;
   std::vector<std::string> extra_flags_;
+  ClusterTls tls_;
   int port_ = 0;
   std::unique_ptr<ScopedProcess> graftd_;
   std::shared_ptr<grpc::Channel> channel_;
