@@ -422,15 +422,16 @@ int ListCommand(Api& api, const ListArgs& args, Io& io) {
   std::vector<std::vector<std::string>> rows;
   const int64_t now = io.now_ms();
   for (const auto& job : jobs) {
+    // Changed-case IIA, as in watch and compare: unchanged cases inflate the overall figure.
     std::string iia = "-";
     if (job.has_latest()) {
       json m = ParseMetrics(job.latest().metrics_json());
-      if (auto v = AccuracyValue(m, "iia_held_out")) iia = Number(*v);
+      if (auto v = AccuracyValue(m, "iia_changed_held_out")) iia = Number(*v);
     }
     rows.push_back({job.id(), job.name(), StateName(job.state()), ProgressBar(job.step(), job.total_steps(), 10),
                     std::to_string(job.step()) + "/" + std::to_string(job.total_steps()), iia, Elapsed(job, now)});
   }
-  io.out << RenderTable({"ID", "NAME", "STATE", "PROGRESS", "STEPS", "IIA", "ELAPSED"}, rows);
+  io.out << RenderTable({"ID", "NAME", "STATE", "PROGRESS", "STEPS", "IIA CHANGED", "ELAPSED"}, rows);
   return kExitOk;
 }
 
@@ -543,22 +544,29 @@ int CancelCommand(Api& api, const CancelArgs& args, Io& io) {
 int MetricsCommand(Api& api, const MetricsArgs& args, Io& io) {
   Target t;
   if (!ParseTarget(args.id, false, &t, io.err)) return kExitUsage;
-  if (args.format != "csv" && args.format != "jsonl") {
-    io.err << "graft: --format '" << args.format << "': expected csv or jsonl\n";
+  if (args.format != "csv" && args.format != "jsonl" && args.format != "json") {
+    io.err << "graft: --format '" << args.format << "': expected csv, jsonl or json\n";
     return kExitUsage;
   }
   std::vector<v1::Point> points;
   grpc::Status s = api.GetMetrics(t.id, &points);
   if (!s.ok()) return Report(s, "metrics", io);
-  if (args.format == "jsonl") {
+  if (args.format == "jsonl" || args.format == "json") {
+    json all = json::array();
     for (const auto& p : points) {
       json m = ParseMetrics(p.metrics_json());
       if (!m.is_object()) m = json::object();
       // The stored object, with the attempt that produced it and the step it is stored under.
       m["step"] = p.step();
       m["attempt"] = p.attempt();
-      io.out << m.dump() << "\n";
+      if (args.format == "jsonl") {
+        io.out << m.dump() << "\n";
+      } else {
+        all.push_back(std::move(m));
+      }
     }
+    // --json, like every --json but watch's: one JSON value (here an array of the points).
+    if (args.format == "json") io.out << all.dump() << "\n";
     return kExitOk;
   }
   // CSV: step and attempt, then every flattened field in the order first seen.
@@ -784,7 +792,7 @@ int ResubmitCommand(Api& api, const ResubmitArgs& args, Io& io) {
   if (!s.ok()) return Report(s, "resubmit", io);
   if (job.state() != v1::JOB_STATE_FAILED && job.state() != v1::JOB_STATE_CANCELLED) {
     io.err << "graft: " << t.id << " is " << StateName(job.state())
-           << "; only a failed or cancelled job can be resubmitted (`graft submit FILE` makes a new job)\n";
+           << "; only a failed or cancelled job can be resubmitted (`graft submit CONFIG` makes a new job)\n";
     return kExitFailure;
   }
   v1::SubmitJobRequest req;

@@ -83,7 +83,7 @@ struct CancelArgs {
 };
 struct MetricsArgs {
   std::string id;
-  std::string format = "csv";  // csv | jsonl
+  std::string format = "csv";  // csv | jsonl | json (one array)
 };
 struct FetchArgs {
   std::string id;
@@ -98,7 +98,7 @@ struct ResubmitArgs {
   bool json = false;
 };
 
-// Offline: validates FILE (and a sweep's every combination) with the server's own library and
+// Offline: validates CONFIG (and a sweep's every combination) with the server's own library and
 // prints its summary, or the server's exact error lines on `err`.
 int CheckCommand(const CheckArgs& args, Io& io);
 int SubmitCommand(Api& api, const SubmitArgs& args, Io& io);

@@ -63,13 +63,13 @@ int main(int argc, char** argv) {
 
   CheckArgs check;
   auto* c_check = app.add_subcommand("check", "validate a config offline (a sweep: every combination)");
-  c_check->add_option("FILE", check.file, "config file")->required();
+  c_check->add_option("CONFIG", check.file, "YAML config file (a job or a sweep)")->required();
   c_check->add_option("--set", check.overrides, "override key.path=value (repeatable)");
   c_check->add_option("--max-sweep-jobs", check.max_sweep_jobs, "largest sweep to accept (graftd's default: 1000)");
 
   SubmitArgs submit;
   auto* c_submit = app.add_subcommand("submit", "submit a job or a sweep");
-  c_submit->add_option("FILE", submit.file, "config file")->required();
+  c_submit->add_option("CONFIG", submit.file, "YAML config file (a job or a sweep)")->required();
   c_submit->add_option("--set", submit.overrides, "override key.path=value (repeatable)");
   c_submit->add_option("--priority", submit.priority, "higher is leased first (default 0)");
   c_submit->add_option("--label", submit.labels, "label key=value (repeatable)");
@@ -114,8 +114,8 @@ int main(int argc, char** argv) {
   bool metrics_json = false;
   auto* c_metrics = app.add_subcommand("metrics", "print a job's evaluations");
   c_metrics->add_option("JOB", metrics.id, "job id j-N")->required();
-  c_metrics->add_option("--format", metrics.format, "csv (default) or jsonl");
-  c_metrics->add_flag("--json", metrics_json, "the same as --format jsonl");
+  c_metrics->add_option("--format", metrics.format, "csv (default), jsonl (a JSON object per line) or json");
+  c_metrics->add_flag("--json", metrics_json, "the same as --format json: one JSON array of the points");
 
   FetchArgs fetch;
   auto* c_fetch = app.add_subcommand("fetch", "download a job's artifacts, checking size and SHA-256");
@@ -193,7 +193,7 @@ int main(int argc, char** argv) {
   }
   if (c_cancel->parsed()) return CancelCommand(*api, cancel, io);
   if (c_metrics->parsed()) {
-    if (metrics_json) metrics.format = "jsonl";
+    if (metrics_json) metrics.format = "json";
     return MetricsCommand(*api, metrics, io);
   }
   if (c_fetch->parsed()) return FetchCommand(*api, fetch, io);

@@ -594,6 +594,63 @@ TEST(ClientCompare, MatchesAHandComputationAndMetricsParseBack) {
     line.erase("attempt");
     EXPECT_EQ(line, json::parse(stored[i].metrics_json())) << i;
   }
+  // --format json: the same objects in one array (one JSON value, as every --json but watch's).
+  ma.format = "json";
+  Ran one = Call([&](client::Io& io) { return client::MetricsCommand(*api, ma, io); });
+  ASSERT_EQ(one.code, 0) << one.err;
+  json arr = json::parse(one.out);
+  ASSERT_TRUE(arr.is_array()) << one.out;
+  ASSERT_EQ(arr.size(), stored.size());
+  for (size_t i = 0; i < stored.size(); ++i) EXPECT_EQ(arr[i], json::parse(lines[i])) << i;
+
+  // The --json rule (README "`--json` means one JSON value"), on the real binary: each command's
+  // standard output parses as one JSON document (nlohmann's parse refuses trailing text, so two
+  // JSON Lines fail), and `metrics --json` is the array above.
+  const std::string sweep_id = submitted["sweep_id"];
+  for (const std::string& cmd : std::vector<std::string>{"list --json", "list --sweep " + sweep_id + " --json", "show " + id + " --json",
+                                 "wait " + id + " --json", "wait " + sweep_id + " --json", "metrics " + id + " --json",
+                                 "compare " + sweep_id + " --json"}) {
+    const std::string out_file = dir.path() + "/json-out";
+    auto r = Graft(c, cmd + " > " + out_file);
+    ASSERT_EQ(r.exit_code, 0) << cmd << ": " << r.output;
+    json doc = json::parse(ReadFile(out_file), nullptr, false);
+    EXPECT_FALSE(doc.is_discarded()) << cmd << " printed more or less than one JSON value:\n" << ReadFile(out_file);
+    if (cmd.rfind("metrics", 0) == 0) {
+      EXPECT_EQ(doc, arr);
+    }
+    if (cmd.rfind("list --sweep", 0) == 0) {
+      EXPECT_EQ(doc.size(), 6u);
+    }
+  }
+
+  // list: the IIA column is the latest changed-case IIA (as watch and compare show), not the
+  // overall one; the standard-training jobs make the two differ, so showing iia_held_out fails.
+  client::ListArgs la;
+  la.sweep = sweep_id;
+  Ran listed = Call([&](client::Io& io) { return client::ListCommand(*api, la, io); });
+  ASSERT_EQ(listed.code, 0) << listed.err;
+  std::vector<std::string> rows = Lines(listed.out);
+  ASSERT_EQ(rows.size(), 7u) << listed.out;
+  EXPECT_NE(rows[0].find("  IIA CHANGED  "), std::string::npos) << rows[0];
+  const size_t column = rows[0].find("IIA CHANGED");
+  bool overall_differs = false;
+  for (const auto& job_id : submitted["job_ids"]) {
+    v1::Job job = c.Get(job_id);
+    json latest = json::parse(job.latest().metrics_json());
+    char changed[16], overall[16];
+    std::snprintf(changed, sizeof(changed), "%.3f", latest["iia_changed_held_out"]["value"].get<double>());
+    std::snprintf(overall, sizeof(overall), "%.3f", latest["iia_held_out"]["value"].get<double>());
+    overall_differs = overall_differs || std::string(changed) != overall;
+    bool found = false;
+    for (const auto& row : rows) {
+      if (row.rfind(job.id() + " ", 0) != 0) continue;
+      found = true;
+      EXPECT_EQ(row.substr(column, 5), changed) << row;
+    }
+    EXPECT_TRUE(found) << job.id() << "\n" << listed.out;
+  }
+  EXPECT_TRUE(overall_differs) << "every job has iia_held_out == iia_changed_held_out; the check above proves nothing";
+
   ma.format = "csv";
   Ran csv = Call([&](client::Io& io) { return client::MetricsCommand(*api, ma, io); });
   ASSERT_EQ(csv.code, 0) << csv.err;
