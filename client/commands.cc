@@ -307,18 +307,17 @@ void FlattenMetrics(const std::string& prefix, const json& value, std::vector<st
 }
 
 int CheckCommand(const CheckArgs& args, Io& io) {
-  std::string text;
-  if (!ReadFileText(args.file, &text, io.err)) return kExitFailure;
-  auto plan = config::PlanFromText(text, args.file, args.overrides, args.max_sweep_jobs);
-  if (!plan.ok()) {
-    io.err << plan.status().message() << "\n";
+  // The config library's check, which `graft-worker check` calls too: both print the same.
+  auto summary = config::CheckFile(args.file, args.overrides, args.max_sweep_jobs);
+  if (!summary.ok()) {
+    if (absl::IsNotFound(summary.status())) {
+      io.err << "graft: " << summary.status().message() << "\n";
+      return kExitFailure;
+    }
+    io.err << summary.status().message() << "\n";
     return kExitInvalidConfig;
   }
-  if (plan->is_sweep) {
-    io.out << config::SummarizePlan(*plan);
-  } else {
-    io.out << config::Summarize(plan->jobs.front().job);
-  }
+  io.out << *summary;
   return kExitOk;
 }
 

@@ -1,11 +1,15 @@
 // The config language: every mistake a person can make gets FILE:LINE:COL and a message that
 // names the key and what was expected; valid configs resolve and round-trip.
+#include <filesystem>
 #include <fstream>
+#include <set>
+#include <sstream>
 
 #include "gtest/gtest.h"
 #include "tests/test_util.h"
 #include "configs/reader/spec.h"
 #include "configs/reader/suggest.h"
+#include "configs/reader/sweep.h"
 #include "trainer/worker/commands.h"
 
 namespace graft::config {
@@ -321,6 +325,104 @@ TEST(CheckCommand, PrintsSummaryOrErrorsWithExitCodes) {
                                         " --set evaluation.every=abc");
   EXPECT_EQ(r.exit_code, 2) << r.output;
   EXPECT_NE(r.output.find("--set #1:1:18: evaluation.every: expected a whole number"), std::string::npos) << r.output;
+}
+
+// A sweep over every kind of axis: 2 (grid) x 2 (together) x 2 (sample) x 2 (seeds) = 16 jobs.
+const char kSweepBlock[] = R"(sweep:
+  grid:
+    training.loss_weights.interchange: [0.0, 1.0]
+  together:
+    - {alignment.local.layer: [1, 2], alignment.careful.layer: [1, 2]}
+  sample:
+    count: 2
+    seed: 3
+    params:
+      training.optimizer.lr: {log_between: [0.0001, 0.01]}
+  seeds: [1, 2]
+)";
+
+// `graft check` and `graft-worker check` are two programs over one library: on a sweep, on a
+// sweep with a bad combination and on one above --max-sweep-jobs, both binaries exit alike and
+// print the same bytes. Catches graft-worker refusing a sweep file graft accepts (it reported
+// "unknown key 'sweep'") and the two summaries drifting apart.
+TEST(CheckCommand, GraftAndGraftWorkerAcceptASweepAndSayTheSame) {
+  ::graft::testing::ScopedTempDir dir;
+  const std::string good = dir.path() + "/sweep.yaml";
+  ::graft::testing::WriteFile(good, std::string(kBase) + kSweepBlock);
+  const std::string bad = dir.path() + "/bad-sweep.yaml";
+  ::graft::testing::WriteFile(bad, std::string(kBase) + "sweep:\n  grid:\n    alignment.local.layer: [1, 7]\n"
+                                                        "  seeds: [1, 2]\n");
+  const std::string bin = ::graft::testing::BinaryDir() + "/bin/";
+  struct Case {
+    std::string args;
+    int exit_code;
+    std::string expected;  // a piece of the output
+  };
+  const std::vector<Case> cases = {
+      {good, 0, "sweep of 16 jobs:\n  parcel-routing/interchange=0,layer=1,lr="},
+      {bad, 2, "sweep combination 3 of 4 (alignment.local.layer=7, seed=1) is invalid"},
+      {good + " --max-sweep-jobs 15", 2, "the sweep makes more than 15 jobs"},
+  };
+  for (const Case& c : cases) {
+    auto client = ::graft::testing::RunCommand(bin + "graft check " + c.args);
+    auto worker = ::graft::testing::RunCommand(bin + "graft-worker check " + c.args);
+    EXPECT_EQ(client.exit_code, c.exit_code) << c.args << "\n" << client.output;
+    EXPECT_EQ(worker.exit_code, c.exit_code) << c.args << "\n" << worker.output;
+    EXPECT_EQ(client.output, worker.output) << c.args;
+    EXPECT_NE(worker.output.find(c.expected), std::string::npos) << c.args << "\n" << worker.output;
+  }
+  // Every job once: the count line and 16 distinct names, each ending in its seed.
+  auto r = ::graft::testing::RunCommand(bin + "graft-worker check " + good);
+  std::istringstream lines(r.output);
+  std::string line;
+  std::getline(lines, line);
+  std::set<std::string> names;
+  while (std::getline(lines, line)) {
+    EXPECT_TRUE(line.size() > 7 && (line.compare(line.size() - 7, 7, "/seed=1") == 0 ||
+                                    line.compare(line.size() - 7, 7, "/seed=2") == 0))
+        << line;
+    names.insert(line);
+  }
+  EXPECT_EQ(names.size(), 16u) << r.output;
+}
+
+// `graft-worker run` trains one job, so a sweep is refused before anything is written, and the
+// message's `--set` values make exactly the sweep's first job (the sampled learning rate in full,
+// not as the job name rounds it). Catches a worker that trains the base config of a sweep, and
+// suggested values that differ from what graftd would run.
+TEST(CheckCommand, RunRefusesASweepAndSaysHowToTrainOneOfItsJobs) {
+  ::graft::testing::ScopedTempDir dir;
+  const std::string file = dir.path() + "/sweep.yaml";
+  ::graft::testing::WriteFile(file, std::string(kBase) + kSweepBlock);
+  worker::RunArgs args;
+  args.config = file;
+  args.out_dir = dir.path() + "/run";
+  std::ostringstream out, err;
+  EXPECT_EQ(worker::RunCommand(args, nullptr, out, err, false), worker::kExitInvalidConfig);
+  EXPECT_FALSE(std::filesystem::exists(args.out_dir));
+  const std::string message = err.str();
+  EXPECT_EQ(message.rfind(file + ":36:1: this config is a sweep of 16 jobs", 0), 0u) << message;
+  EXPECT_NE(message.find("graft submit " + file), std::string::npos) << message;
+
+  std::string text = std::string(kBase) + kSweepBlock;
+  auto plan = PlanFromText(text, file, {}, kDefaultMaxSweepJobs);
+  ASSERT_TRUE(plan.ok()) << plan.status();
+  const PlannedJob& first = plan->jobs.front();
+  ASSERT_EQ(first.overrides.size(), 5u);  // interchange, the two layers, lr, seed
+  std::string suggested = "--set sweep=null";
+  for (const auto& o : first.overrides) suggested += " --set " + o;
+  EXPECT_NE(message.find(suggested + "\n"), std::string::npos) << message;
+
+  std::vector<std::string> overrides = {"sweep=null"};
+  overrides.insert(overrides.end(), first.overrides.begin(), first.overrides.end());
+  overrides.push_back("name='" + first.name + "'");
+  auto lone = LoadJob(file, overrides);
+  ASSERT_TRUE(lone.ok()) << lone.status();
+  EXPECT_EQ(ResolvedSpecYaml(lone->spec), ResolvedSpecYaml(first.job.spec));
+  // The name rounds the sampled value; the override does not.
+  const std::string lr = first.overrides[3].substr(first.overrides[3].find('=') + 1);
+  EXPECT_EQ(first.overrides[3].rfind("training.optimizer.lr=", 0), 0u) << first.overrides[3];
+  EXPECT_EQ(std::stod(lr), first.job.spec.training.optimizer.lr);
 }
 
 // The analysis blocks (issue 7): `scan:` and `das:`. Appended text starts at line 36 of kBase.

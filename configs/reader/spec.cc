@@ -859,7 +859,14 @@ absl::StatusOr<ResolvedJob> ResolveTree(const ConfigNode& root) {
         absl::StrCat(root.loc.ToString(), ": expected a config (a map with algorithm, network, alignment, ...), got ",
                      root.Describe()));
   }
-  r.CheckKeys(root, "", {"name", "seed", "algorithm", "network", "alignment", "training", "evaluation", "scan", "das"});
+  r.CheckKeys(root, "", {"name", "seed", "algorithm", "network", "alignment", "training", "evaluation", "scan", "das",
+                         "sweep"});
+  // A sweep is many jobs, expanded by ExpandConfig (configs/reader/sweep.h), which hands each one
+  // here without its block; `sweep: null` turns it off.
+  if (const ConfigNode* n = root.Find("sweep"); n != nullptr && !n->IsNull()) {
+    r.Error(n->loc, "sweep: this config is a sweep of many jobs, not one job; expand it with the sweep reader "
+                    "(graft check, graft submit), or turn it off with sweep: null");
+  }
   if (const ConfigNode* n = root.Find("name")) {
     if (auto s = r.String(*n, "name")) spec.name = *s;
   }

@@ -11,6 +11,7 @@
 #include "absl/strings/str_cat.h"
 #include "absl/strings/str_join.h"
 #include "absl/strings/str_split.h"
+#include "configs/reader/suggest.h"
 #include "trainer/causal/rng.h"
 
 namespace graft::config {
@@ -21,6 +22,13 @@ struct Axis {
   std::vector<std::string> keys;                  // dotted paths
   std::vector<std::vector<ConfigNode>> points;    // points[i][k] is the value of keys[k]
 };
+
+// "; did you mean 'x'?" when a valid name is near `word`, else "; valid ...: a, b, c".
+std::string Hint(const std::string& word, const std::vector<std::string>& valid, const char* what) {
+  const std::string near = Nearest(word, valid);
+  if (!near.empty()) return absl::StrCat("; did you mean '", near, "'?");
+  return absl::StrCat("; valid ", what, ": ", absl::StrJoin(valid, ", "));
+}
 
 ConfigNode Scalar(const std::string& s, const Location& loc) {
   ConfigNode n;
@@ -50,6 +58,21 @@ std::string NameText(const ConfigNode& v) {
     if (c != ' ') out.push_back(c);
   }
   return out;
+}
+
+// Value text for a `--set key=value` argument: the value exactly as YAML (a scalar as written or
+// drawn, a quoted one in single quotes, lists and maps in flow style without spaces).
+std::string OverrideText(const ConfigNode& v) {
+  if (v.IsScalar()) {
+    if (!v.quoted) return v.scalar;
+    std::string out = "'";
+    for (char c : v.scalar) {
+      out.push_back(c);
+      if (c == '\'') out.push_back('\'');
+    }
+    return out + "'";
+  }
+  return NameText(v);
 }
 
 // Sets `path` (dotted; numeric segments index lists) in `root` to `value`.
@@ -167,7 +190,8 @@ absl::StatusOr<std::vector<Axis>> ReadAxes(const ConfigNode& sweep, std::vector<
           params = &sv;
         } else {
           return absl::InvalidArgumentError(absl::StrCat(sk.loc.ToString(), ": unknown key '", sk.scalar,
-                                                         "' in 'sweep.sample'; valid keys: count, seed, params"));
+                                                         "' in 'sweep.sample'",
+                                                         Hint(sk.scalar, {"count", "seed", "params"}, "keys")));
         }
       }
       if (count <= 0 || params == nullptr || !params->IsMap() || params->entries.empty()) {
@@ -210,8 +234,9 @@ absl::StatusOr<std::vector<Axis>> ReadAxes(const ConfigNode& sweep, std::vector<
               value = Scalar(absl::StrCat(lo + static_cast<int64_t>(rng.Uniform(static_cast<uint64_t>(hi - lo + 1)))), arg.loc);
             }
           } else {
-            return absl::InvalidArgumentError(absl::StrCat(pv.entries[0].first.loc.ToString(), ": ", what, ": unknown draw '",
-                                                           kind, "'; expected log_between, between, whole_between or one_of"));
+            return absl::InvalidArgumentError(
+                absl::StrCat(pv.entries[0].first.loc.ToString(), ": ", what, ": unknown draw '", kind, "'",
+                             Hint(kind, {"between", "log_between", "whole_between", "one_of"}, "draws")));
           }
           value.loc = arg.loc;
           axis.points[i].push_back(value);
@@ -223,8 +248,8 @@ absl::StatusOr<std::vector<Axis>> ReadAxes(const ConfigNode& sweep, std::vector<
       if (!values.ok()) return values.status();
       *seeds = *values;
     } else {
-      return absl::InvalidArgumentError(absl::StrCat(k.loc.ToString(), ": unknown key '", key,
-                                                     "' in 'sweep'; valid keys: grid, together, sample, seeds"));
+      return absl::InvalidArgumentError(absl::StrCat(k.loc.ToString(), ": unknown key '", key, "' in 'sweep'",
+                                                     Hint(key, {"grid", "together", "sample", "seeds"}, "keys")));
     }
   }
   return axes;
@@ -241,6 +266,17 @@ std::string ShortKey(const std::string& path, const std::set<std::string>& clash
 absl::StatusOr<SweepPlan> ExpandConfig(const ConfigNode& root, int64_t max_jobs) {
   SweepPlan plan;
   const ConfigNode* sweep = root.IsMap() ? root.Find("sweep") : nullptr;
+  if (sweep != nullptr && sweep->IsNull()) {
+    // `sweep: null` turns the sweep off: the config without it is one job.
+    ConfigNode lone = root;
+    for (auto it = lone.entries.begin(); it != lone.entries.end(); ++it) {
+      if (it->first.scalar == "sweep") {
+        lone.entries.erase(it);
+        break;
+      }
+    }
+    return ExpandConfig(lone, max_jobs);
+  }
   if (sweep == nullptr) {
     auto job = ResolveTree(root);
     if (!job.ok()) return job.status();
@@ -324,6 +360,7 @@ absl::StatusOr<SweepPlan> ExpandConfig(const ConfigNode& root, int64_t max_jobs)
           absl::Status st = SetPath(tree, axis.keys[j], value, value.loc);
           if (!st.ok()) return st;
           p.varied.emplace_back(axis.keys[j], NameText(value));
+          p.overrides.push_back(absl::StrCat(axis.keys[j], "=", OverrideText(value)));
           const std::string part = absl::StrCat(ShortKey(axis.keys[j], clashing), "=", NameText(value));
           if (named.insert(part).second) parts.push_back(part);
         }
@@ -334,6 +371,7 @@ absl::StatusOr<SweepPlan> ExpandConfig(const ConfigNode& root, int64_t max_jobs)
         absl::Status st = SetPath(tree, "seed", seeds[s], seeds[s].loc);
         if (!st.ok()) return st;
         p.varied.emplace_back("seed", NameText(seeds[s]));
+        p.overrides.push_back(absl::StrCat("seed=", OverrideText(seeds[s])));
         absl::StrAppend(&name, "/seed=", NameText(seeds[s]));
       }
       if (!names.insert(name).second) absl::StrAppend(&name, "#", k);
@@ -382,6 +420,19 @@ std::string SummarizePlan(const SweepPlan& plan) {
   out << "sweep of " << plan.jobs.size() << " jobs:\n";
   for (const auto& j : plan.jobs) out << "  " << j.name << "\n";
   return out.str();
+}
+
+absl::StatusOr<std::string> CheckFile(const std::string& path, const std::vector<std::string>& overrides,
+                                      int64_t max_jobs) {
+  auto tree = ParseYamlFile(path);
+  if (!tree.ok()) return tree.status();
+  for (size_t i = 0; i < overrides.size(); ++i) {
+    absl::Status st = ApplyOverride(*tree, overrides[i], static_cast<int>(i + 1));
+    if (!st.ok()) return st;
+  }
+  auto plan = ExpandConfig(*tree, max_jobs);
+  if (!plan.ok()) return plan.status();
+  return plan->is_sweep ? SummarizePlan(*plan) : Summarize(plan->jobs.front().job);
 }
 
 }  // namespace graft::config

@@ -21,6 +21,9 @@ struct PlannedJob {
   // comma-separated), then seed=N; e.g. "parcel-routing/interchange=0,layer=1/seed=2".
   std::string name;
   std::vector<std::pair<std::string, std::string>> varied;  // full key path -> value, in axis order
+  // The same settings as `--set` arguments with the exact values ("key.path=value", YAML text,
+  // sampled numbers in full): with `sweep=null` first they make this job from the sweep's file.
+  std::vector<std::string> overrides;
   ResolvedJob job;  // validated, with spec.name set to `name` for sweep members
 };
 
@@ -29,7 +32,11 @@ struct SweepPlan {
   std::vector<PlannedJob> jobs;   // in expansion order: grid (first axis slowest), together, sample, seeds
 };
 
-// Expands a parsed config (overrides already applied). Fails with InvalidArgument naming the
+// The largest sweep graftd accepts by default (its --max-sweep-jobs); `check` uses the same.
+inline constexpr int64_t kDefaultMaxSweepJobs = 1000;
+
+// Expands a parsed config (overrides already applied). A `sweep` key whose value is null
+// (`sweep: null`, or `--set sweep=null`) turns the sweep off: the config is its base job. Fails with InvalidArgument naming the
 // location of a mistake in the sweep block, or "sweep combination K of N (k=v,...): <error>"
 // for the first combination that does not validate; ResourceExhausted when the sweep would make
 // more than `max_jobs` jobs (checked before any combination is resolved).
@@ -41,6 +48,13 @@ absl::StatusOr<SweepPlan> PlanFromText(const std::string& text, const std::strin
 
 // A short summary of a plan for `check`: the number of jobs and their names.
 std::string SummarizePlan(const SweepPlan& plan);
+
+// `check` of `graft` and `graft-worker` alike, so both accept the same files and print the same
+// text: reads the file, applies the overrides, expands, and returns what to print (Summarize()
+// for a lone job, SummarizePlan() for a sweep). NotFound when the file cannot be read; otherwise
+// the errors of PlanFromText (InvalidArgument, or ResourceExhausted above `max_jobs`).
+absl::StatusOr<std::string> CheckFile(const std::string& path, const std::vector<std::string>& overrides,
+                                      int64_t max_jobs);
 
 }  // namespace graft::config
 

@@ -1,24 +1,72 @@
 #include "trainer/worker/commands.h"
 
+#include "absl/strings/str_join.h"
 #include "configs/reader/spec.h"
+#include "configs/reader/sweep.h"
 #include "trainer/train/analysis.h"
 #include "trainer/train/trainer.h"
 
 namespace graft::worker {
+namespace {
+
+// `run`, `evaluate`, `scan` and `das` act on one job: true unless the config, after the overrides,
+// has a sweep block, in which case it says on `err` what to do instead. Other problems are left
+// to LoadJob to report.
+bool IsOneJob(const std::string& config, const std::vector<std::string>& overrides, const char* command,
+              std::ostream& err) {
+  auto tree = config::ParseYamlFile(config);
+  if (!tree.ok()) return true;
+  for (size_t i = 0; i < overrides.size(); ++i) {
+    if (!config::ApplyOverride(*tree, overrides[i], static_cast<int>(i + 1)).ok()) return true;
+  }
+  const config::ConfigNode* sweep = nullptr;
+  config::Location where;
+  if (tree->IsMap()) {
+    for (const auto& [key, value] : tree->entries) {
+      if (key.scalar == "sweep") {
+        sweep = &value;
+        where = key.loc;
+      }
+    }
+  }
+  if (sweep == nullptr || sweep->IsNull()) return true;
+  auto plan = config::ExpandConfig(*tree, config::kDefaultMaxSweepJobs);
+  err << where.ToString() << ": this config is a sweep";
+  if (plan.ok()) err << " of " << plan->jobs.size() << " jobs";
+  err << ", and `graft-worker " << command << "` takes one job:\n";
+  if (std::string(command) == "run") {
+    err << "  submit the sweep to graftd (graft submit " << config << "), or train one of its jobs here\n";
+  } else {
+    err << "  name one of its jobs\n";
+  }
+  err << "  with the sweep turned off (--set sweep=null) and that job's values given with --set";
+  if (plan.ok() && !plan->jobs.empty()) {
+    err << "; for the first\n  (" << plan->jobs.front().name << "):\n    --set sweep=null --set "
+        << absl::StrJoin(plan->jobs.front().overrides, " --set ") << "\n";
+  } else {
+    err << "\n";
+    if (!plan.ok()) err << plan.status().message() << "\n";
+  }
+  return false;
+}
+
+}  // namespace
 
 int CheckCommand(const std::string& config, const std::vector<std::string>& overrides, std::ostream& out,
-                 std::ostream& err) {
-  auto job = config::LoadJob(config, overrides);
-  if (!job.ok()) {
-    err << job.status().message() << "\n";
-    return absl::IsNotFound(job.status()) ? kExitFailure : kExitInvalidConfig;
+                 std::ostream& err, int64_t max_sweep_jobs) {
+  // The config library's check, which `graft check` calls too: both print the same.
+  auto summary = config::CheckFile(config, overrides, max_sweep_jobs);
+  if (!summary.ok()) {
+    err << summary.status().message() << "\n";
+    return absl::IsNotFound(summary.status()) ? kExitFailure : kExitInvalidConfig;
   }
-  out << config::Summarize(*job);
+  out << *summary;
   return kExitOk;
 }
 
 int RunCommand(const RunArgs& args, const std::atomic<bool>* stop, std::ostream& out, std::ostream& err,
                bool err_is_terminal) {
+  if (!IsOneJob(args.config, args.overrides, "run", err)) return kExitInvalidConfig;
   auto job = config::LoadJob(args.config, args.overrides);
   if (!job.ok()) {
     err << job.status().message() << "\n";
@@ -73,7 +121,8 @@ namespace {
 
 using AnalysisFn = absl::StatusOr<std::string> (*)(const config::ResolvedJob&, const train::AnalysisOptions&);
 
-int Analyse(const AnalyseArgs& args, AnalysisFn fn, std::ostream& out, std::ostream& err) {
+int Analyse(const AnalyseArgs& args, const char* command, AnalysisFn fn, std::ostream& out, std::ostream& err) {
+  if (!IsOneJob(args.config, args.overrides, command, err)) return kExitInvalidConfig;
   auto job = config::LoadJob(args.config, args.overrides);
   if (!job.ok()) {
     err << job.status().message() << "\n";
@@ -95,13 +144,13 @@ int Analyse(const AnalyseArgs& args, AnalysisFn fn, std::ostream& out, std::ostr
 }  // namespace
 
 int EvaluateCommand(const AnalyseArgs& args, std::ostream& out, std::ostream& err) {
-  return Analyse(args, &train::EvaluateStored, out, err);
+  return Analyse(args, "evaluate", &train::EvaluateStored, out, err);
 }
 int ScanCommand(const AnalyseArgs& args, std::ostream& out, std::ostream& err) {
-  return Analyse(args, &train::ScanStored, out, err);
+  return Analyse(args, "scan", &train::ScanStored, out, err);
 }
 int DasCommand(const AnalyseArgs& args, std::ostream& out, std::ostream& err) {
-  return Analyse(args, &train::DasStored, out, err);
+  return Analyse(args, "das", &train::DasStored, out, err);
 }
 
 }  // namespace graft::worker

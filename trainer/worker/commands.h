@@ -18,10 +18,12 @@ inline constexpr int kExitInvalidConfig = 2;
 // Stopped by a signal or --stop-after-step with a checkpoint written: resume with --resume.
 inline constexpr int kExitInterrupted = 3;
 
-// `graft-worker check CONFIG [--set k=v]...`: validates and prints the summary to `out`, or
-// the errors (one "FILE:LINE:COL: message" per line) to `err`.
+// `graft-worker check CONFIG [--set k=v]... [--max-sweep-jobs N]`: validates and prints the
+// summary to `out` (for a sweep: its job count and every job's name, as `graft check` prints),
+// or the errors (one "FILE:LINE:COL: message" per line) to `err`. A sweep of more than
+// `max_sweep_jobs` jobs is invalid (2).
 int CheckCommand(const std::string& config, const std::vector<std::string>& overrides, std::ostream& out,
-                 std::ostream& err);
+                 std::ostream& err, int64_t max_sweep_jobs = 1000);
 
 struct RunArgs {
   std::string config;
@@ -34,7 +36,8 @@ struct RunArgs {
 
 // `graft-worker run CONFIG --out DIR [--set k=v]... [--resume DIR]`: trains the job, writing
 // the run directory; the live progress line goes to `err`. `stop` (may be null) is polled at
-// step boundaries, e.g. set by SIGINT/SIGTERM.
+// step boundaries, e.g. set by SIGINT/SIGTERM. A sweep is refused (2) with a message saying to
+// submit it to graftd, or to train one of its jobs with `--set sweep=null` and that job's values.
 int RunCommand(const RunArgs& args, const std::atomic<bool>* stop, std::ostream& out, std::ostream& err,
                bool err_is_terminal);
 

@@ -26,6 +26,8 @@ int main(int argc, char** argv) {
   CLI::App* check = app.add_subcommand("check", "Validate a config and print a summary of the job");
   check->add_option("CONFIG", check_config, "YAML config file")->required();
   check->add_option("--set", check_sets, "Override a key: key.path=value (repeatable)")->take_all();
+  int64_t check_max_sweep_jobs = 1000;
+  check->add_option("--max-sweep-jobs", check_max_sweep_jobs, "largest sweep to accept (graftd's default: 1000)");
 
   graft::worker::RunArgs run_args;
   CLI::App* run = app.add_subcommand("run", "Train a job in this process and write its run directory");
@@ -69,7 +71,7 @@ int main(int argc, char** argv) {
     return app.exit(e) == 0 ? 0 : graft::worker::kExitInvalidConfig;
   }
   if (check->parsed()) {
-    return graft::worker::CheckCommand(check_config, check_sets, std::cout, std::cerr);
+    return graft::worker::CheckCommand(check_config, check_sets, std::cout, std::cerr, check_max_sweep_jobs);
   }
   if (run->parsed()) {
     std::signal(SIGINT, OnStopSignal);
