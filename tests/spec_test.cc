@@ -207,11 +207,9 @@ TEST(Spec, ResolvedSpecEscapesQuotesInText) {
 TEST(SpecErrors, CycleIsNamed) {
   std::string text = Replace(kBase, "local:   origin == dest", "local:   origin == dest && careful");
   text = Replace(text, "|| fragile", "|| local");
-  EXPECT_ERROR(ErrorOf(text), "job.yaml:1", "mechanisms form a cycle: ");
-  const std::string msg = ErrorOf(text);
-  EXPECT_TRUE(msg.find("local -> careful -> local") != std::string::npos ||
-              msg.find("careful -> local -> careful") != std::string::npos)
-      << msg;
+  // The cycle is reported at the expression of its first declared variable: `local` on line 10,
+  // whose expression starts at column 14 ("    local:   " is 13 characters).
+  EXPECT_ERROR(ErrorOf(text), "job.yaml:10:14: ", "mechanisms form a cycle: local -> careful -> local");
 }
 
 TEST(SpecErrors, UnknownNameInExpressionPointsInsideIt) {
@@ -304,8 +302,11 @@ TEST(SpecErrors, EveryErrorIsReportedNotOnlyTheFirst) {
 }
 
 TEST(Suggest, EditDistanceAndNearest) {
-  EXPECT_EQ(EditDistance("kitten", "sitting"), 3);  // the textbook example of Levenshtein distance
-  EXPECT_EQ(EditDistance("ca", "abc"), 3);          // optimal string alignment, not full Damerau (2)
+  // Both worked examples are common practice, written from memory: "kitten" -> "sitting" is the
+  // textbook example of Levenshtein distance (3), and "ca" -> "abc" the usual one that tells the
+  // optimal string alignment distance (3) from the full Damerau-Levenshtein distance (2).
+  EXPECT_EQ(EditDistance("kitten", "sitting"), 3);
+  EXPECT_EQ(EditDistance("ca", "abc"), 3);
   EXPECT_EQ(Nearest("stpes", {"steps", "batch_size"}), "steps");
   EXPECT_EQ(Nearest("zzzzzz", {"steps", "batch_size"}), "");
 }

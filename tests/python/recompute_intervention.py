@@ -1,20 +1,25 @@
 #!/usr/bin/python3
 """Independent float64 recomputation of a graft MLP's base and intervened logits.
 
-Usage: /usr/bin/python3 recompute_intervention.py RUN_DIR
+Usage: /usr/bin/python3 recompute_intervention.py RUN_DIR [--recount]
 
 RUN_DIR holds what graft wrote after training:
   spec.yaml    the resolved job spec. Used: algorithm.inputs (name -> domain: a list of symbols,
                {range: [lo, hi]} or bool), algorithm.output (its classes, when listed),
                network.embedding.dim, network.hidden, network.activation (relu | gelu | tanh),
-               alignment (variable -> {layer: K, units: [unit indices]}).
+               alignment (variable -> {layer: K, units: [unit indices]}), and
+               training.interventions (the intervention sets, each a list of aligned
+               variables; a set's name is its variables in declaration order joined by '+').
+               With --recount also algorithm.mechanisms and algorithm.output's expression.
   weights.pt   LibTorch's torch::pickle_save of a c10::Dict<std::string, Tensor>, which
                torch.load returns as a plain dict. Exactly these keys: embed.<input> [values, dim]
                for each input, hidden.<k>.weight [out, in] and hidden.<k>.bias [out] for each
                hidden layer k, out.weight [classes, last width], out.bias [classes].
-  logits.json   {"inputs": [...], "sets": [{"name", "variables"}], "triples": [{"base": [value
-               index per input], "source": [...], "set": name}], "base_logits": [[...]],
-               "intervened_logits": [[...]]}, one logits row per triple.
+  logits.json   {"inputs": [...], "sets": [...], "triples": [{"base": [value index per input],
+               "source": [...], "set": name}], "base_logits": [[...]], "intervened_logits":
+               [[...]]}, one logits row per triple. Its "sets" list is not read: which
+               variables a set intervenes on comes from spec.yaml's training.interventions.
+  result.json  only with --recount: the final held-out figures graft reported.
 
 The model, recomputed here with NumPy in float64 from the weights alone:
   x   = concatenation over inputs (in declaration order) of embed.<input>[value index]
@@ -23,12 +28,23 @@ The model, recomputed here with NumPy in float64 from the weights alone:
 The interchange intervention (base b, source s, set V): run s and keep its activations h^s_k;
 run b, and for k from 0 upward, after computing h_k overwrite the units of every variable of V
 aligned at layer k with h^s_k at those units, then continue from the overwritten h_k.
-Only the weights, the raw input value indices, the source choices and the alignment are used;
-no activation graft computed is read.
+Only the weights, the raw input value indices, the source choices, and the alignment and the
+sets of the config are used; no activation graft computed is read.
 
 Checks: weights match the spec exactly (keys and shapes); both logits agree with the dump's
 within 1e-5 absolute; and at least one triple's intervened logits differ from its base logits
 by more than 1e-3, so agreement is not vacuous.
+
+--recount (the dump must hold every held-out evaluation triple, so run with
+evaluation.triples <= the dump's 64): the labels are recomputed from the config's algorithm,
+its expressions parsed by check_expressions.py's Translator (the documented grammar, evaluated
+by Python) and run in dependency order: the base label is the output on the base input; the
+counterfactual label is the output on the base input with the set's variables taking the
+values they take on the source (an interchange intervention). A triple is changed when the two
+labels differ, and correct when the argmax of the recomputed intervened logits is the
+counterfactual label's class. The counts must equal result.json's iia_held_out,
+iia_changed_held_out and iia_by_set (correct and n) and unchanged_floor (unchanged / n), so
+the changed-case count is recounted from the labels, not derived from unchanged_floor.
 
 Exit codes: 0 agreement, 1 any mismatch, failed assertion, malformed input or missing module.
 """
@@ -146,8 +162,48 @@ def read_spec(run_dir, yaml):
         require(all(0 <= u < hidden[layer] for u in units),
                 f"{path}: alignment.{variable}.units {units} fall outside layer {layer} (width {hidden[layer]})")
         alignment[str(variable)] = (layer, units)
+
+    # The algorithm's expressions and declaration order (inputs, then mechanisms).
+    mechanisms = algo.get("mechanisms") or {}
+    require(isinstance(mechanisms, dict), f"{path}: algorithm.mechanisms must be a map")
+    exprs = {}
+    symbols = set()
+    for n, d in inputs.items():
+        if isinstance(d, list):
+            symbols.update(str(x) for x in d)
+    for m, decl in mechanisms.items():
+        expr = decl.get("expr") if isinstance(decl, dict) else decl
+        require(isinstance(expr, str), f"{path}: algorithm.mechanisms.{m}: expected an expression")
+        exprs[str(m)] = expr
+        if isinstance(decl, dict) and isinstance(decl.get("domain"), list):
+            symbols.update(str(x) for x in decl["domain"])
+    declared = names + list(exprs)
+    output_name, output_expr, class_names = None, None, None
+    if isinstance(output, dict) and len(output) == 1:
+        (output_name, out_decl), = output.items()
+        output_name = str(output_name)
+        output_expr = out_decl.get("expr") if isinstance(out_decl, dict) else out_decl
+        if isinstance(out_decl, dict) and isinstance(out_decl.get("classes"), list):
+            class_names = [str(c) for c in out_decl["classes"]]
+            symbols.update(class_names)
+
+    # The intervention sets, named as graft names them.
+    interventions = (spec.get("training") or {}).get("interventions")
+    require(isinstance(interventions, list) and interventions,
+            f"{path}: training.interventions must be a non-empty list of lists of aligned variables")
+    sets = {}
+    for k, group in enumerate(interventions):
+        require(isinstance(group, list) and group and all(isinstance(v, str) for v in group),
+                f"{path}: training.interventions[{k}]: expected a non-empty list of variable names, got {group!r}")
+        for v in group:
+            require(v in alignment, f"{path}: training.interventions[{k}] names {v!r}, which is not aligned")
+        ordered = sorted(set(group), key=declared.index)
+        sets["+".join(ordered)] = ordered
+
     return {"names": names, "sizes": sizes, "dim": dim, "hidden": hidden, "activation": activation,
-            "classes": classes, "alignment": alignment}
+            "classes": classes, "alignment": alignment, "sets": sets, "inputs": inputs, "exprs": exprs,
+            "symbols": symbols, "output_name": output_name, "output_expr": output_expr,
+            "class_names": class_names, "path": path}
 
 
 def read_weights(run_dir, spec, np, torch):
@@ -193,10 +249,12 @@ def activation_function(kind, np, erf):
 
 
 def main(argv):
-    if len(argv) != 2:
-        print("usage: recompute_intervention.py RUN_DIR", file=sys.stderr)
+    recount = "--recount" in argv[1:]
+    args = [a for a in argv[1:] if a != "--recount"]
+    if len(args) != 1:
+        print("usage: recompute_intervention.py RUN_DIR [--recount]", file=sys.stderr)
         return 1
-    run_dir = argv[1]
+    run_dir = args[0]
     mods = import_modules()
     np, torch, yaml = mods["numpy"], mods["torch"], mods["yaml"]
     erf = mods["scipy.special"].erf
@@ -205,7 +263,13 @@ def main(argv):
         weights, num_classes = read_weights(run_dir, spec, np, torch)
         with open(os.path.join(run_dir, "logits.json"), encoding="utf-8") as f:
             dump = json.load(f)
-        return check(spec, weights, num_classes, dump, np, activation_function(spec["activation"], np, erf))
+        status, inter_mine = check(spec, weights, num_classes, dump, np,
+                                   activation_function(spec["activation"], np, erf))
+        if recount:
+            with open(os.path.join(run_dir, "result.json"), encoding="utf-8") as f:
+                result = json.load(f)
+            status = max(status, recount_labels(spec, dump, inter_mine, result, np))
+        return status
     except CheckFailed as e:
         print(f"recompute_intervention: FAILED: {e}", file=sys.stderr)
         return 1
@@ -217,11 +281,7 @@ def main(argv):
 def check(spec, weights, num_classes, dump, np, act):
     names = spec["names"]
     require(dump.get("inputs") == names, f"logits.json: inputs {dump.get('inputs')} differ from the spec's {names}")
-    sets = {}
-    for s in dump["sets"]:
-        for v in s["variables"]:
-            require(v in spec["alignment"], f"logits.json: set {s['name']!r} names {v!r}, which is not aligned")
-        sets[s["name"]] = list(s["variables"])
+    sets = spec["sets"]  # from the config, not from the dump
     triples = dump["triples"]
     require(len(triples) > 0, "logits.json: no triples")
     base_dumped = np.asarray(dump["base_logits"], dtype=np.float64)
@@ -262,7 +322,8 @@ def check(spec, weights, num_classes, dump, np, act):
     base_mine = np.empty_like(base_dumped)
     inter_mine = np.empty_like(inter_dumped)
     for i, t in enumerate(triples):
-        require(t["set"] in sets, f"logits.json: triple {i} uses unknown set {t['set']!r}")
+        require(t["set"] in sets, f"logits.json: triple {i} uses set {t['set']!r}, which is not one of the "
+                                  f"config's training.interventions {sorted(sets)}")
         b, s = indices(t, "base"), indices(t, "source")
         source_acts, _ = run(s)
         overwrite = {}
@@ -291,7 +352,104 @@ def check(spec, weights, num_classes, dump, np, act):
     if moved == 0:
         print("FAILED: no intervention changes any logit; the check would be vacuous")
         ok = False
-    return 0 if ok else 1
+    return (0 if ok else 1), inter_mine
+
+
+def recount_labels(spec, dump, inter_mine, result, np):
+    """Recounts result.json's held-out IIA figures from labels computed here (see --recount)."""
+    import check_expressions as ce  # beside this script: the independent expression parser
+
+    triples = dump["triples"]
+    total = result["iia_held_out"]["n"]
+    require(len(triples) == total,
+            f"--recount: logits.json holds {len(triples)} of the {total} evaluation triples; run with "
+            f"evaluation.triples <= {len(triples)} so it holds them all")
+    require(spec["output_expr"] is not None and spec["class_names"] is not None,
+            f"{spec['path']}: --recount needs algorithm.output with its expression and classes")
+    names = spec["names"]
+    values_of = []  # per input: the value of each value index
+    for n in names:
+        d = spec["inputs"][n]
+        if isinstance(d, list):
+            values_of.append([str(x) for x in d])
+        elif d == "bool":
+            values_of.append([0.0, 1.0])
+        else:
+            values_of.append([float(v) for v in range(d["range"][0], d["range"][1] + 1)])
+    exprs = dict(spec["exprs"])
+    exprs[spec["output_name"]] = spec["output_expr"]
+    variables = {n: "symbol" if isinstance(v[0], str) else "number" for n, v in zip(names, values_of)}
+    variables.update({m: "any" for m in exprs})
+    try:
+        code = {m: compile(ce.Translator(e, variables, spec["symbols"]).translate(), f"<{m}>", "eval")
+                for m, e in exprs.items()}
+    except ce.Malformed as e:
+        raise CheckFailed(f"--recount: cannot parse the algorithm's expressions: {e}") from None
+    env = {"__builtins__": {"min": min, "max": max, "abs": abs, "int": int, "float": float,
+                            "_and": ce._and, "_or": ce._or}}
+
+    def evaluate(indices, fixed):
+        """All variables' values on the input with these value indices; `fixed` overrides."""
+        V = {n: values_of[k][i] for k, (n, i) in enumerate(zip(names, indices))}
+        V.update(fixed)
+        pending = [m for m in exprs if m not in V]
+        while pending:
+            progress = False
+            for m in list(pending):
+                try:
+                    V[m] = eval(code[m], env, {"V": V})
+                except KeyError:  # a parent not computed yet
+                    continue
+                pending.remove(m)
+                progress = True
+            require(progress, f"--recount: cannot order the mechanisms {pending}")
+        return V
+
+    def class_of(value):
+        if isinstance(value, str):
+            require(value in spec["class_names"], f"--recount: output value {value!r} is not a class")
+            return spec["class_names"].index(value)
+        require(float(value) == int(value) and 0 <= int(value) < len(spec["class_names"]),
+                f"--recount: output value {value!r} is not a class index")
+        return int(value)
+
+    out = spec["output_name"]
+    predicted = np.argmax(inter_mine, axis=1)
+    counts = {"correct": 0, "changed": 0, "changed_correct": 0}
+    by_set = {}
+    for i, t in enumerate(triples):
+        base = evaluate(t["base"], {})
+        source = evaluate(t["source"], {})
+        counterfactual = evaluate(t["base"], {v: source[v] for v in spec["sets"][t["set"]]})
+        changed = counterfactual[out] != base[out]
+        correct = int(predicted[i]) == class_of(counterfactual[out])
+        counts["correct"] += correct
+        counts["changed"] += changed
+        counts["changed_correct"] += changed and correct
+        c, n = by_set.get(t["set"], (0, 0))
+        by_set[t["set"]] = (c + correct, n + 1)
+    unchanged_floor = (total - counts["changed"]) / total
+    print(f"recounted from the labels: {counts['correct']}/{total} correct, {counts['changed']} changed "
+          f"({counts['changed_correct']} of them correct), unchanged floor {unchanged_floor:.6g}")
+    mismatches = []
+
+    def compare(label, mine, theirs):
+        if mine != theirs:
+            mismatches.append(f"{label}: recounted {mine}, result.json says {theirs}")
+
+    compare("iia_held_out (correct, n)", (counts["correct"], total),
+            (result["iia_held_out"]["correct"], result["iia_held_out"]["n"]))
+    compare("iia_changed_held_out (correct, n)", (counts["changed_correct"], counts["changed"]),
+            (result["iia_changed_held_out"]["correct"], result["iia_changed_held_out"]["n"]))
+    for name in sorted(set(by_set) | set(result["iia_by_set"])):
+        theirs = result["iia_by_set"].get(name, {})
+        compare(f"iia_by_set.{name} (correct, n)", by_set.get(name, (0, 0)), (theirs.get("correct"), theirs.get("n")))
+    if abs(unchanged_floor - result["unchanged_floor"]) > 1e-12:
+        mismatches.append(f"unchanged_floor: recounted {unchanged_floor!r}, result.json says "
+                          f"{result['unchanged_floor']!r}")
+    for m in mismatches:
+        print("MISMATCH: " + m)
+    return 1 if mismatches else 0
 
 
 if __name__ == "__main__":
