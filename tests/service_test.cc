@@ -10,6 +10,7 @@
 #include <sstream>
 #include <thread>
 
+#include <google/protobuf/descriptor.h>
 #include <grpcpp/generic/generic_stub.h>
 #include <grpcpp/grpcpp.h>
 
@@ -141,18 +142,19 @@ TEST(Service, CancelStopsARunningJobWithinOneEvaluationInterval) {
 
 // Every RPC with no token, a wrong token and each role (table-driven). A permitted caller gets
 // the status its arguments lead to: OK for a real job, config or worker, NOT_FOUND for the
-// made-up ids j-999999 and s-999999 and for the weights of a job that has not run.
+// made-up ids j-999999 and s-999999 and for the weights of a job that has not run. The table
+// must name every RPC of the services' generated descriptors, so a new RPC fails here until added.
 TEST(Service, EveryCallNeedsATokenAndTheRightRole) {
   Cluster c;
   const std::string job = c.Submit(kAlice, "parcel-routing", kSmall);
-  // A registered worker id, so that LeaseJob can succeed.
-  std::string worker_id;
-  {
+  // Registered worker ids, so that LeaseJob and DeregisterWorker can succeed.
+  std::string worker_id, leaving_id;
+  for (std::string* id : {&worker_id, &leaving_id}) {
     v1::RegisterWorkerRequest r;
     r.set_host("table");
     v1::RegisterWorkerResponse o;
     ASSERT_TRUE(c.workers().RegisterWorker(c.Ctx(kWorker).get(), r, &o).ok());
-    worker_id = o.worker_id();
+    *id = o.worker_id();
   }
   using Call = std::function<grpc::Status(grpc::ClientContext*)>;
   struct Entry {
@@ -233,6 +235,18 @@ TEST(Service, EveryCallNeedsATokenAndTheRightRole) {
                               v1::ServerInfo o;
                               return J.GetServerInfo(x, r, &o);
                             }};
+  calls["ListWorkers"] = {false, kOk, [&](grpc::ClientContext* x) {
+                            v1::ListWorkersRequest r;
+                            v1::ListWorkersResponse o;
+                            return J.ListWorkers(x, r, &o);
+                          }};
+  calls["DeregisterWorker"] = {true, kOk, [&](grpc::ClientContext* x) {
+                                 v1::DeregisterWorkerRequest r;
+                                 r.set_worker_id(leaving_id);
+                                 r.set_reason("table");
+                                 v1::DeregisterWorkerResponse o;
+                                 return W.DeregisterWorker(x, r, &o);
+                               }};
   calls["RegisterWorker"] = {true, kOk, [&](grpc::ClientContext* x) {
                                v1::RegisterWorkerRequest r;
                                r.set_host("test");
@@ -279,7 +293,22 @@ TEST(Service, EveryCallNeedsATokenAndTheRightRole) {
                           v1::FinishJobResponse o;
                           return W.FinishJob(x, r, &o);
                         }};
-  ASSERT_EQ(calls.size(), 16u);  // every RPC of the Jobs and Workers services
+  // Every RPC of the Jobs and Workers services, as the generated descriptors list them.
+  size_t methods = 0;
+  for (const char* service : {"graft.v1.Jobs", "graft.v1.Workers"}) {
+    const auto* d = google::protobuf::DescriptorPool::generated_pool()->FindServiceByName(service);
+    ASSERT_NE(d, nullptr) << service;
+    for (int m = 0; m < d->method_count(); ++m) {
+      ++methods;
+      auto it = calls.find(d->method(m)->name());
+      if (it == calls.end()) {
+        ADD_FAILURE() << service << "." << d->method(m)->name() << " is not in the table";
+        continue;
+      }
+      EXPECT_EQ(it->second.worker_service, std::string(service) == "graft.v1.Workers") << it->first;
+    }
+  }
+  ASSERT_EQ(calls.size(), methods);
   struct Who {
     std::string label, token;
     enum { kNone, kJobs, kWorkers } may;
