@@ -22,8 +22,18 @@ namespace {
 using json = nlohmann::ordered_json;
 namespace fs = std::filesystem;
 
+// What `fetch` downloads: every job's files, then those of the spec's scan: and das: blocks.
 const std::vector<std::string> kArtifacts = {"weights.pt", "metrics.jsonl", "result.json", "spec.yaml",
-                                             "checkpoint.pt"};
+                                             "failures.jsonl", "checkpoint.pt"};
+const std::vector<std::string> kScanArtifacts = {"scan.json", "scan.tsv", "scan.svg"};
+const std::vector<std::string> kDasArtifacts = {"das.json", "rotation.pt"};
+
+// Whether a resolved spec has `key:` at its top level (ResolvedSpecYaml writes scan: and das:
+// only when the config had them).
+bool HasTopLevelKey(const std::string& spec_yaml, const std::string& key) {
+  const std::string line = key + ":";
+  return spec_yaml.rfind(line, 0) == 0 || spec_yaml.find("\n" + line) != std::string::npos;
+}
 
 // Reports a failed call and returns its exit code.
 int Report(const grpc::Status& s, const std::string& what, Io& io) {
@@ -181,7 +191,7 @@ int WatchOrWait(Api& api, const WatchArgs& args, Io& io, bool draw) {
         io.out << JobToJson(job, false).dump() << "\n";
       } else {
         io.out << job.id() << " " << StateName(job.state());
-        if (!job.error().empty() && job.state() != v1::JOB_STATE_SUCCEEDED) io.out << ": " << job.error();
+        if (!EndReason(job).empty()) io.out << ": " << EndReason(job);
         io.out << "\n";
       }
     }
@@ -454,7 +464,8 @@ int ShowCommand(Api& api, const ShowArgs& args, Io& io) {
   rows.push_back({"state", StateName(job.state()) + (job.attempt() > 0 ? " (attempt " + std::to_string(job.attempt()) +
                                                                               " of " + std::to_string(job.max_attempts()) + ")"
                                                                         : "")});
-  if (!job.error().empty()) rows.push_back({job.state() == v1::JOB_STATE_FAILED ? "error" : "note", job.error()});
+  if (!job.error().empty()) rows.push_back({"error", job.error()});
+  if (!job.cancel_reason().empty()) rows.push_back({"reason", job.cancel_reason()});
   rows.push_back({"owner", job.owner()});
   if (!job.sweep_id().empty()) rows.push_back({"sweep", job.sweep_id()});
   rows.push_back({"priority", std::to_string(job.priority())});
@@ -614,7 +625,10 @@ int FetchCommand(Api& api, const FetchArgs& args, Io& io) {
   }
   int fetched = 0;
   std::vector<std::string> missing;
-  for (const auto& name : kArtifacts) {
+  std::vector<std::string> names = kArtifacts;
+  if (HasTopLevelKey(job.spec_yaml(), "scan")) names.insert(names.end(), kScanArtifacts.begin(), kScanArtifacts.end());
+  if (HasTopLevelKey(job.spec_yaml(), "das")) names.insert(names.end(), kDasArtifacts.begin(), kDasArtifacts.end());
+  for (const auto& name : names) {
     const std::string final_path = (fs::path(args.out_dir) / name).string();
     const std::string part_path = final_path + ".part";
     std::ofstream out(part_path, std::ios::binary | std::ios::trunc);

@@ -105,7 +105,7 @@ std::string JobHeader(const v1::Job& job, int64_t now_ms) {
     << job.total_steps();
   if (job.attempt() > 0) o << "  attempt " << job.attempt();
   o << "  elapsed " << Elapsed(job, now_ms);
-  if (!job.error().empty() && IsFinal(job.state())) o << "\n" << job.error();
+  if (!EndReason(job).empty()) o << "\n" << EndReason(job);
   return o.str();
 }
 
@@ -181,6 +181,12 @@ std::string Elapsed(const v1::Job& job, int64_t now_ms) {
   return FormatDuration(std::max<int64_t>(0, end - job.started_ms()));
 }
 
+std::string EndReason(const v1::Job& job) {
+  if (job.state() == v1::JOB_STATE_FAILED) return job.error();
+  if (job.state() == v1::JOB_STATE_CANCELLED) return job.cancel_reason().empty() ? job.error() : job.cancel_reason();
+  return "";
+}
+
 std::string RenderTable(const std::vector<std::string>& header, const std::vector<std::vector<std::string>>& rows) {
   std::vector<int> widths(header.size(), 0);
   for (size_t c = 0; c < header.size(); ++c) widths[c] = Width(header[c]);
@@ -245,6 +251,7 @@ json JobToJson(const v1::Job& job, bool with_texts) {
   j["checkpoint_step"] = job.checkpoint_step();
   j["worker_id"] = job.worker_id();
   j["error"] = job.error();
+  j["cancel_reason"] = job.cancel_reason();
   if (job.has_latest()) j["latest"] = PointToJson(job.latest());
   if (with_texts) {
     if (!job.spec_yaml().empty()) j["spec_yaml"] = job.spec_yaml();
@@ -367,7 +374,7 @@ std::string RenderJobLine(const JobView& view, const v1::JobEvent& event) {
   if (event.has_state_change()) {
     o << job.id() << " " << StateName(job.state());
     if (job.state() == v1::JOB_STATE_RUNNING && job.attempt() > 0) o << " (attempt " << job.attempt() << ")";
-    if (!job.error().empty() && IsFinal(job.state())) o << ": " << job.error();
+    if (!EndReason(job).empty()) o << ": " << EndReason(job);
   } else if (event.has_point()) {
     const json& m = view.points().at(event.point().step()).metrics;
     o << job.id() << " step " << event.point().step() << "/" << job.total_steps() << " acc_held_out "
@@ -458,7 +465,7 @@ std::string RenderSweepLine(const SweepView& view, const v1::SweepEvent& event) 
   const v1::JobEvent& e = event.event();
   if (e.has_state_change()) {
     o << j.id() << " " << j.name() << " " << StateName(j.state());
-    if (!j.error().empty() && IsFinal(j.state())) o << ": " << j.error();
+    if (!EndReason(j).empty()) o << ": " << EndReason(j);
   } else if (e.has_point()) {
     const json& m = jv.points().at(e.point().step()).metrics;
     o << j.id() << " " << j.name() << " step " << e.point().step() << "/" << j.total_steps() << " acc_held_out "

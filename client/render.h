@@ -30,6 +30,10 @@ std::string Sparkline(const std::vector<double>& values, int max_width);
 std::string FormatDuration(int64_t ms);
 // The time a job has run: to now while running, to its end once finished; "-" if never started.
 std::string Elapsed(const v1::Job& job, int64_t now_ms);
+// Why a job ended without success, for people: a failed job's `error`, a cancelled job's
+// `cancel_reason` ("cancelled by alice: <reason>; the worker stopped at step N"; from a graftd
+// older than that field, its `error`); "" for any other job.
+std::string EndReason(const v1::Job& job);
 
 // Columns padded to their widest cell (UTF-8 aware), two spaces apart, header first.
 std::string RenderTable(const std::vector<std::string>& header, const std::vector<std::vector<std::string>>& rows);

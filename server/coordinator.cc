@@ -7,6 +7,7 @@
 
 #include "absl/status/status.h"
 #include "absl/strings/str_cat.h"
+#include "absl/strings/str_join.h"
 #include "spdlog/spdlog.h"
 #include "configs/reader/spec.h"
 #include "configs/reader/sweep.h"
@@ -25,13 +26,14 @@ class SystemClock : public Clock {
   }
 };
 
-const char* const kArtifactNames[] = {"checkpoint.pt", "weights.pt", "result.json", "metrics.jsonl", "spec.yaml"};
+// What a worker may upload and a user download: the run directory's files, and those of the
+// spec's scan: and das: blocks (present only when the spec has them).
+const std::vector<std::string> kArtifactNames = {"checkpoint.pt", "weights.pt", "result.json", "metrics.jsonl",
+                                                 "spec.yaml",     "failures.jsonl", "scan.json", "scan.tsv",
+                                                 "scan.svg",      "das.json",       "rotation.pt"};
 
 bool IsArtifactName(const std::string& name) {
-  for (const char* n : kArtifactNames) {
-    if (name == n) return true;
-  }
-  return false;
+  return std::find(kArtifactNames.begin(), kArtifactNames.end(), name) != kArtifactNames.end();
 }
 
 v1::Point PointProto(const PointRecord& p) {
@@ -133,6 +135,7 @@ v1::Job Coordinator::ToProto(const JobRecord& j, bool with_texts) {
     p.set_result_json(j.result_json);
   }
   p.set_error(j.error);
+  p.set_cancel_reason(j.cancel_reason);
   p.set_worker_id(j.worker_id);
   p.set_checkpoint_step(j.checkpoint_step);
   p.set_sweep_id(j.sweep_id);
@@ -261,7 +264,7 @@ absl::StatusOr<v1::Job> Coordinator::Cancel(const Principal& who, const std::str
     const bool was_running = job->state == JobState::kRunning;
     job->state = JobState::kCancelled;
     job->finished_ms = clock_->NowMs();
-    job->error = absl::StrCat("cancelled by ", who.name, reason.empty() ? "" : ": ", reason);
+    job->cancel_reason = absl::StrCat("cancelled by ", who.name, reason.empty() ? "" : ": ", reason);
     // A running job keeps its worker until the worker acknowledges (its next report says stop).
     absl::Status st = store_->UpdateJob(*job);
     if (!st.ok()) return st;
@@ -290,8 +293,8 @@ absl::StatusOr<std::vector<v1::Point>> Coordinator::Metrics(const Principal& who
 absl::StatusOr<ArtifactRecord> Coordinator::Artifact(const Principal& who, const std::string& job_id,
                                                      const std::string& name) {
   if (!IsArtifactName(name)) {
-    return absl::InvalidArgumentError(absl::StrCat("'", name, "' is not an artifact name; expected one of checkpoint.pt, "
-                                                   "weights.pt, result.json, metrics.jsonl, spec.yaml"));
+    return absl::InvalidArgumentError(absl::StrCat("'", name, "' is not an artifact name; expected one of ",
+                                                   absl::StrJoin(kArtifactNames, ", ")));
   }
   std::lock_guard<std::mutex> lock(mu_);
   auto job = LoadVisible(who, job_id);
@@ -651,7 +654,7 @@ absl::StatusOr<v1::ReportResponse> Coordinator::Report(const v1::ReportRequest& 
     out.set_acknowledged_step(acknowledged_[job->id]);
     if (job->state == JobState::kCancelled) {
       out.set_stop(true);
-      out.set_stop_reason(job->error);
+      out.set_stop_reason(job->cancel_reason);
     } else {
       job->step = std::max(job->step, request.step());
       job->lease_expires_ms = clock_->NowMs() + options_.lease_ms;
@@ -676,7 +679,8 @@ absl::StatusOr<ArtifactRecord> Coordinator::CheckpointFor(const v1::FetchCheckpo
 
 absl::StatusOr<std::unique_ptr<Upload>> Coordinator::BeginUpload(const v1::ArtifactHeader& header) {
   if (!IsArtifactName(header.name())) {
-    return absl::InvalidArgumentError(absl::StrCat("'", header.name(), "' is not an artifact name"));
+    return absl::InvalidArgumentError(absl::StrCat("'", header.name(), "' is not an artifact name; expected one of ",
+                                                   absl::StrJoin(kArtifactNames, ", ")));
   }
   if (header.total_bytes() < 0 || header.total_bytes() > options_.max_artifact_bytes) {
     return absl::InvalidArgumentError(absl::StrCat("artifact size ", header.total_bytes(), " outside [0, ",
@@ -777,7 +781,7 @@ absl::Status Coordinator::Finish(const v1::FinishJobRequest& request) {
                      request.handed_back_reason());
           break;
         case v1::FinishJobRequest::kStoppedReason:
-          job->error = absl::StrCat(job->error, "; the worker ", request.stopped_reason());
+          job->cancel_reason = absl::StrCat(job->cancel_reason, "; the worker ", request.stopped_reason());
           log_->info("job {} attempt {}: {} stopped it after the cancellation", id, job->attempt, job->worker_id);
           break;
         default:

@@ -40,11 +40,13 @@ struct JobRecord {
   int64_t step = 0;          // latest progress of the current attempt
   std::string spec_yaml;
   std::string result_json;
-  std::string error;
+  std::string error;          // failed: why (a run-time failure, or no attempts left)
+  std::string cancel_reason;  // cancelled: by whom and why ("cancelled by alice: <reason>"), and
+                              // how its worker stopped; "" for a job never cancelled
   std::string worker_id;     // lease holder while running, else ""
   int64_t lease_expires_ms = 0;  // running: when the lease lapses unless renewed
   int64_t checkpoint_step = 0;   // step of the last stored checkpoint.pt, 0 if none
-  std::string sweep_id;          // reserved for sweeps, "" for a lone job
+  std::string sweep_id;          // "s-<n>" for a member of a sweep, "" for a lone job
 };
 
 struct PointRecord {
@@ -55,7 +57,8 @@ struct PointRecord {
 
 struct ArtifactRecord {
   int64_t job_id = 0;
-  std::string name;    // checkpoint.pt, weights.pt, result.json, metrics.jsonl, spec.yaml
+  std::string name;    // checkpoint.pt, weights.pt, result.json, metrics.jsonl, spec.yaml, failures.jsonl,
+                       // and scan.json, scan.tsv, scan.svg, das.json, rotation.pt for analysis blocks
   std::string path;    // file under the data dir holding the bytes
   int64_t bytes = 0;
   std::string sha256;  // hex

@@ -88,6 +88,12 @@ ALTER TABLE workers ADD COLUMN slurm_array_task_id TEXT    NOT NULL DEFAULT '';
 ALTER TABLE workers ADD COLUMN jobs_finished       INTEGER NOT NULL DEFAULT 0;
 ALTER TABLE workers ADD COLUMN left_ms             INTEGER NOT NULL DEFAULT 0;
 )sql",
+    // Version 3: why a job was cancelled has a column of its own, and `error` holds failures only.
+    // Until now a cancelled job (state 5) kept its cancellation in `error`: it moves across.
+    R"sql(
+ALTER TABLE jobs ADD COLUMN cancel_reason TEXT NOT NULL DEFAULT '';
+UPDATE jobs SET cancel_reason = error, error = '' WHERE state = 5;
+)sql",
 };
 
 constexpr int kBusyTimeoutMs = 5000;
@@ -96,7 +102,7 @@ constexpr int kBusyTimeoutMs = 5000;
 constexpr char kJobColumns[] =
     "id, name, owner, state, priority, labels_json, attempt, max_attempts, submitted_ms, "
     "started_ms, finished_ms, total_steps, step, spec_yaml, result_json, error, worker_id, "
-    "lease_expires_ms, checkpoint_step, sweep_id";
+    "lease_expires_ms, checkpoint_step, sweep_id, cancel_reason";
 
 bool ValidState(int64_t v) {
   return v >= static_cast<int>(JobState::kQueued) && v <= static_cast<int>(JobState::kCancelled);
@@ -446,6 +452,7 @@ absl::Status SqliteJobStore::BindJobFields(Statement& stmt, const JobRecord& job
   stmt.BindInt(17, job.lease_expires_ms);
   stmt.BindInt(18, job.checkpoint_step);
   stmt.BindText(19, job.sweep_id);
+  stmt.BindText(20, job.cancel_reason);
   return absl::OkStatus();
 }
 
@@ -477,6 +484,7 @@ absl::StatusOr<JobRecord> SqliteJobStore::ReadJob(const Statement& stmt) {
   job.lease_expires_ms = stmt.Int(17);
   job.checkpoint_step = stmt.Int(18);
   job.sweep_id = stmt.Text(19);
+  job.cancel_reason = stmt.Text(20);
   return job;
 }
 
@@ -510,8 +518,8 @@ absl::StatusOr<int64_t> SqliteJobStore::InsertJob(const JobRecord& job) {
   absl::StatusOr<Statement> stmt = Prepare(
       "INSERT INTO jobs (name, owner, state, priority, labels_json, attempt, max_attempts, submitted_ms, "
       "started_ms, finished_ms, total_steps, step, spec_yaml, result_json, error, worker_id, "
-      "lease_expires_ms, checkpoint_step, sweep_id) "
-      "VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14, ?15, ?16, ?17, ?18, ?19)",
+      "lease_expires_ms, checkpoint_step, sweep_id, cancel_reason) "
+      "VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14, ?15, ?16, ?17, ?18, ?19, ?20)",
       "InsertJob");
   if (!stmt.ok()) return stmt.status();
   absl::Status st = BindJobFields(*stmt, job);
@@ -533,8 +541,8 @@ absl::StatusOr<std::vector<int64_t>> SqliteJobStore::InsertSweep(const std::vect
     absl::StatusOr<Statement> stmt = Prepare(
         "INSERT INTO jobs (name, owner, state, priority, labels_json, attempt, max_attempts, submitted_ms, "
         "started_ms, finished_ms, total_steps, step, spec_yaml, result_json, error, worker_id, "
-        "lease_expires_ms, checkpoint_step, sweep_id) "
-        "VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14, ?15, ?16, ?17, ?18, ?19)",
+        "lease_expires_ms, checkpoint_step, sweep_id, cancel_reason) "
+        "VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14, ?15, ?16, ?17, ?18, ?19, ?20)",
         "InsertSweep");
     if (!stmt.ok()) return stmt.status();
     JobRecord copy = job;
@@ -609,12 +617,12 @@ absl::Status SqliteJobStore::UpdateJob(const JobRecord& job) {
       "UPDATE jobs SET name = ?1, owner = ?2, state = ?3, priority = ?4, labels_json = ?5, attempt = ?6, "
       "max_attempts = ?7, submitted_ms = ?8, started_ms = ?9, finished_ms = ?10, total_steps = ?11, "
       "step = ?12, spec_yaml = ?13, result_json = ?14, error = ?15, worker_id = ?16, "
-      "lease_expires_ms = ?17, checkpoint_step = ?18, sweep_id = ?19 WHERE id = ?20",
+      "lease_expires_ms = ?17, checkpoint_step = ?18, sweep_id = ?19, cancel_reason = ?20 WHERE id = ?21",
       "UpdateJob");
   if (!stmt.ok()) return stmt.status();
   absl::Status st = BindJobFields(*stmt, job);
   if (!st.ok()) return st;
-  stmt->BindInt(20, job.id);
+  stmt->BindInt(21, job.id);
   st = stmt->Run();
   if (!st.ok()) return st;
   if (sqlite3_changes(db_) == 0) return absl::NotFoundError(absl::StrCat("job store UpdateJob: no job ", job.id));

@@ -21,7 +21,6 @@
 #include "tests/cluster.h"
 #include "tests/test_util.h"
 #include "configs/reader/spec.h"
-#include "configs/reader/sweep.h"
 
 namespace graft {
 namespace {
@@ -186,17 +185,6 @@ TEST(ClientSweep, ExpandsGridTogetherSampleAndSeedsIntoTheRightJobs) {
   EXPECT_TRUE(wrong_names.empty()) << wrong_names.size() << " of 16 names differ, e.g. " << wrong_names.front();
   EXPECT_EQ(names.size(), 16u);
   EXPECT_EQ(lrs.size(), 2u);  // two random draws, shared by every grid point
-  // They are the draws of the expansion that SampleDrawsFitTheirDistributionsPerScipy checks
-  // against SciPy: the server stored what the library drew.
-  auto plan = config::PlanFromText(ReadFile(file), file, args.overrides, 1000);
-  ASSERT_TRUE(plan.ok()) << plan.status();
-  std::set<std::string> planned_lrs;
-  for (const config::PlannedJob& p : plan->jobs) {
-    char lr[32];
-    std::snprintf(lr, sizeof(lr), "%.17g", p.job.spec.training.optimizer.lr);
-    planned_lrs.insert(lr);
-  }
-  EXPECT_EQ(lrs, planned_lrs);
 
   // `list --sweep` pages through and finds the same 16.
   client::ListArgs la;
@@ -212,8 +200,7 @@ TEST(ClientSweep, AnInvalidCombinationRejectsTheWholeSweepAndStoresNothing) {
   auto api = ApiFor(c);
   ScopedTempDir dir;
   const std::string file = dir.path() + "/bad-sweep.yaml";
-  // Layer 7 does not exist in a network of three hidden layers: combinations 3 and 4 of 4 (layer
-  // 7 with seeds 1 and 2) are invalid, and the first of them is named.
+  // Layer 7 does not exist in a network of three hidden layers: combination 2 of 4 is invalid.
   WriteFile(file, ParcelConfigWith("sweep:\n  grid:\n    alignment.local.layer: [1, 7]\n  seeds: [1, 2]\n"));
   // Through the server directly (no local check), to get the server's own message.
   v1::SubmitJobRequest req;
@@ -266,44 +253,6 @@ TEST(ClientSweep, AnInvalidCombinationRejectsTheWholeSweepAndStoresNothing) {
   auto bin = RunCommand(BinaryDir() + "/bin/graft check " + typo + " 2>&1");
   EXPECT_EQ(bin.exit_code, 2);
   EXPECT_EQ(bin.output, s.error_message() + "\n");
-}
-
-// The draws of `sample`, many of them, against SciPy's distributions (tests/python/check_draws.py):
-// log_between must be log-uniform (Kolmogorov-Smirnov against scipy.stats.loguniform), between
-// uniform (against scipy.stats.uniform) and whole_between a fair choice of every whole number in
-// its bounds, both ends included (chi-square, scipy.stats.chisquare). 2000 draws from a fixed
-// seed, so the outcome is the same on every run; level 0.001 (see the script). Being inside the
-// bounds, all ExpandsGridTogetherSampleAndSeedsIntoTheRightJobs can check with two draws, would
-// not tell a uniform draw from a log-uniform one. The same library function expands the sweep in
-// `graft check`, `graft submit` and graftd.
-TEST(ClientSweep, SampleDrawsFitTheirDistributionsPerScipy) {
-  const int kDraws = 2000;
-  const std::string text = ParcelConfigWith("sweep:\n  sample:\n    count: " + std::to_string(kDraws) +
-                                            "\n    seed: 12\n    params:\n"
-                                            "      training.optimizer.lr: {log_between: [0.0003, 0.01]}\n"
-                                            "      training.loss_weights.interchange: {between: [0.25, 4.0]}\n"
-                                            "      training.batch_size: {whole_between: [16, 35]}\n");
-  auto plan = config::PlanFromText(text, "draws.yaml", {}, kDraws);
-  ASSERT_TRUE(plan.ok()) << plan.status();
-  ASSERT_EQ(plan->jobs.size(), static_cast<size_t>(kDraws));
-  json lr = json::array(), weight = json::array(), batch = json::array();
-  for (const config::PlannedJob& job : plan->jobs) {
-    lr.push_back(job.job.spec.training.optimizer.lr);
-    weight.push_back(job.job.spec.training.interchange_weight);
-    batch.push_back(job.job.spec.training.batch_size);
-  }
-  json draws = {{"alpha", 0.001},
-                {"draws",
-                 {{{"name", "log_between lr"}, {"kind", "log_uniform"}, {"low", 0.0003}, {"high", 0.01}, {"values", lr}},
-                  {{"name", "between interchange"}, {"kind", "uniform"}, {"low", 0.25}, {"high", 4.0}, {"values", weight}},
-                  {{"name", "whole_between batch_size"}, {"kind", "whole_uniform"}, {"low", 16}, {"high", 35},
-                   {"values", batch}}}}};
-  ScopedTempDir dir;
-  WriteFile(dir.path() + "/draws.json", draws.dump());
-  auto py = RunCommand(std::string(::graft::testing::SystemPython()) + " " + SourceDir() +
-                       "/tests/python/check_draws.py " + dir.path() + "/draws.json");
-  EXPECT_EQ(py.exit_code, 0) << py.output;
-  EXPECT_NE(py.output.find("checked 3 draws at level 0.001"), std::string::npos) << py.output;
 }
 
 // ---------------------------------------------------------------------------------------------
@@ -774,6 +723,168 @@ TEST(ClientCompare, MatchesAHandComputationAndMetricsParseBack) {
 }
 
 // ---------------------------------------------------------------------------------------------
+// fetch of failures.jsonl and of the scan and DAS files a submitted config asks for.
+
+// The counterfactual route of parcel-routing written out by hand from configs/parcel-routing.yaml
+// (local: origin == dest; careful: weight heavy or oversize, or fragile; route = 2*local +
+// careful over van, truck, bike, courier), independent of graft's compiled tables: the
+// variables named in `set` take their values from the source, the rest from the base.
+std::string HandRoute(const json& base, const json& source, const std::string& set) {
+  auto truthy = [](const json& v) { return v.is_boolean() ? v.get<bool>() : v.get<std::string>() == "true"; };
+  auto local = [](const json& in) { return in.at("origin") == in.at("dest"); };
+  auto careful = [&](const json& in) {
+    const std::string w = in.at("weight");
+    return w == "heavy" || w == "oversize" || truthy(in.at("fragile"));
+  };
+  const bool moves_local = set == "local" || set == "local+careful";
+  const bool moves_careful = set == "careful" || set == "local+careful";
+  const int l = (moves_local ? local(source) : local(base)) ? 1 : 0;
+  const int k = (moves_careful ? careful(source) : careful(base)) ? 1 : 0;
+  static const char* const kRoutes[] = {"van", "truck", "bike", "courier"};
+  return kRoutes[2 * l + k];
+}
+
+// A standard-training job (interchange 0, so its interventions fail often) with scan: and das:
+// blocks: the worker runs both after training and uploads their files beside failures.jsonl;
+// fetch downloads each one with its SHA-256 checked against coreutils' sha256sum, and the files
+// hold what they should: every failure line is a real failure of the algorithm written out by
+// hand, as many as result.json's IIA count says (at most 200), and the scan and DAS reports
+// name the config's variables. A job without the blocks fetches failures.jsonl and does not
+// report scan or DAS files as missing. Catches a worker that leaves out failures.jsonl or the
+// analysis files, a coordinator that refuses their names, and a fetch that does not ask for them.
+TEST(ClientFetch, FailuresAndTheScanAndDasFilesOfASubmittedJob) {
+  Cluster c;
+  auto worker = c.StartWorker("w1");
+  ScopedTempDir dir;
+  auto api = ApiFor(c);
+  const std::string file = dir.path() + "/analysed.yaml";
+  WriteFile(file, ParcelConfigWith("scan: {block: 4}\ndas: {steps: 20, batch_size: 64}\n"));
+  client::SubmitArgs sa;
+  sa.file = file;
+  sa.overrides = Plus(kTiny, {"training.loss_weights.interchange=0"});
+  sa.json = true;
+  Ran submitted = Call([&](client::Io& io) { return client::SubmitCommand(*api, sa, io); });
+  ASSERT_EQ(submitted.code, 0) << submitted.err;
+  const std::string id = json::parse(submitted.out)["job_id"];
+  ASSERT_TRUE(c.WaitState(id, v1::JOB_STATE_SUCCEEDED, 120000)) << c.Get(id).error() << ReadFile(worker->log_path());
+
+  client::FetchArgs fa;
+  fa.id = id;
+  fa.out_dir = dir.path() + "/analysed";
+  Ran fetched = Call([&](client::Io& io) { return client::FetchCommand(*api, fa, io); });
+  ASSERT_EQ(fetched.code, 0) << fetched.err;
+  EXPECT_EQ(fetched.out.find("not stored"), std::string::npos) << fetched.out;
+  for (const char* name : {"failures.jsonl", "scan.json", "scan.tsv", "scan.svg", "das.json", "rotation.pt"}) {
+    const std::string path = fa.out_dir + "/" + name;
+    auto sum = RunCommand("sha256sum " + path);
+    ASSERT_EQ(sum.exit_code, 0) << name << ": " << sum.output << fetched.out;
+    EXPECT_NE(fetched.out.find(path + "  "), std::string::npos) << fetched.out;
+    EXPECT_NE(fetched.out.find("sha256 " + sum.output.substr(0, 64) + " verified"), std::string::npos)
+        << name << "\n" << fetched.out;
+  }
+
+  const json result = json::parse(ReadFile(fa.out_dir + "/result.json"));
+  const int64_t failing = result["iia_held_out"]["n"].get<int64_t>() - result["iia_held_out"]["correct"].get<int64_t>();
+  ASSERT_GT(failing, 0) << "a standard-training network fails some interchange interventions";
+  const std::vector<std::string> lines = Lines(ReadFile(fa.out_dir + "/failures.jsonl"));
+  EXPECT_EQ(static_cast<int64_t>(lines.size()), std::min<int64_t>(200, failing));
+  for (const std::string& line : lines) {
+    const json f = json::parse(line);
+    const std::string set = f.at("set");
+    EXPECT_TRUE(set == "local" || set == "careful" || set == "local+careful") << line;
+    EXPECT_EQ(f.at("base_label"), HandRoute(f.at("base"), f.at("base"), "")) << line;
+    EXPECT_EQ(f.at("expected"), HandRoute(f.at("base"), f.at("source"), set)) << line;
+    EXPECT_NE(f.at("predicted"), f.at("expected")) << line;
+  }
+  const json scan = json::parse(ReadFile(fa.out_dir + "/scan.json"));
+  for (const char* variable : {"local", "careful"}) {
+    EXPECT_EQ(scan["variables"][variable]["best"]["units"].size(), 4u) << scan.dump();
+  }
+  EXPECT_NE(ReadFile(fa.out_dir + "/scan.svg").find("<svg"), std::string::npos);
+  const json das = json::parse(ReadFile(fa.out_dir + "/das.json"));
+  EXPECT_EQ(das["layer"], 1);
+  EXPECT_EQ(das["steps"], 20);
+  EXPECT_TRUE(das["network"].contains("iia_changed_held_out")) << das.dump();
+  EXPECT_TRUE(das["control_untrained_network"].contains("iia_changed_held_out")) << das.dump();
+
+  // Without analysis blocks: failures.jsonl, and no scan or DAS file is missed.
+  const std::string plain = c.Submit(kAlice, "parcel-routing", kTiny);
+  ASSERT_TRUE(c.WaitState(plain, v1::JOB_STATE_SUCCEEDED, 120000)) << c.Get(plain).error();
+  fa.id = plain;
+  fa.out_dir = dir.path() + "/plain";
+  fetched = Call([&](client::Io& io) { return client::FetchCommand(*api, fa, io); });
+  ASSERT_EQ(fetched.code, 0) << fetched.err;
+  EXPECT_NE(fetched.out.find(fa.out_dir + "/failures.jsonl  "), std::string::npos) << fetched.out;
+  EXPECT_EQ(fetched.out.find("scan"), std::string::npos) << fetched.out;
+  EXPECT_EQ(fetched.out.find("das"), std::string::npos) << fetched.out;
+}
+
+// ---------------------------------------------------------------------------------------------
+// A cancellation's reason has a field of its own; `error` is for failures.
+
+// A running job cancelled with a reason: Job.cancel_reason names the user, the reason and how
+// the worker stopped, Job.error stays empty, and `wait`, `show` and `show --json` say so; a job
+// cancelled while queued has no worker part; a failed job has its error and no cancel reason.
+// Catches the reason landing in `error` again, and the client printing the wrong field.
+TEST(ClientCancel, TheReasonHasItsOwnFieldAndReadsAsBefore) {
+  Cluster c;
+  auto worker = c.StartWorker("w1");
+  auto api = ApiFor(c);
+  const std::string running = c.Submit(kAlice, "parcel-routing",
+                                       Plus(kTiny, {"training.steps=1000000", "evaluation.every=1000"}));
+  ASSERT_TRUE(c.WaitState(running, v1::JOB_STATE_RUNNING, 60000)) << ReadFile(worker->log_path());
+  client::CancelArgs ca;
+  ca.id = running;
+  ca.reason = "wrong alignment";
+  Ran cancelled = Call([&](client::Io& io) { return client::CancelCommand(*api, ca, io); });
+  ASSERT_EQ(cancelled.code, 0) << cancelled.err;
+  client::WatchArgs wa;
+  wa.id = running;
+  wa.timeout_ms = 60000;
+  Ran waited = Call([&](client::Io& io) { return client::WaitCommand(*api, wa, io); });
+  EXPECT_EQ(waited.code, 5) << waited.out << waited.err;
+  // The worker's acknowledgement is stored after the state change: wait for it.
+  ASSERT_TRUE(WaitFor([&] { return c.Get(running).cancel_reason().find("; the worker") != std::string::npos; }, 60000))
+      << c.Get(running).cancel_reason();
+  const v1::Job job = c.Get(running);
+  EXPECT_EQ(job.error(), "");
+  EXPECT_EQ(job.cancel_reason().rfind("cancelled by alice: wrong alignment; the worker stopped at step ", 0), 0u)
+      << job.cancel_reason();
+  waited = Call([&](client::Io& io) { return client::WaitCommand(*api, wa, io); });
+  EXPECT_EQ(waited.code, 5);
+  EXPECT_NE(waited.out.find(running + " cancelled: " + job.cancel_reason() + "\n"), std::string::npos) << waited.out;
+  client::ShowArgs sh;
+  sh.id = running;
+  Ran shown = Call([&](client::Io& io) { return client::ShowCommand(*api, sh, io); });
+  ASSERT_EQ(shown.code, 0) << shown.err;
+  EXPECT_NE(shown.out.find(job.cancel_reason()), std::string::npos) << shown.out;
+  EXPECT_EQ(shown.out.find("error"), std::string::npos) << shown.out;
+  sh.json = true;
+  shown = Call([&](client::Io& io) { return client::ShowCommand(*api, sh, io); });
+  ASSERT_EQ(shown.code, 0) << shown.err;
+  const json shown_json = json::parse(shown.out);
+  EXPECT_EQ(shown_json["cancel_reason"], job.cancel_reason());
+  EXPECT_EQ(shown_json["error"], "");
+
+  // Cancelled while still queued: with no worker running, the job is never leased.
+  worker.reset();
+  const std::string queued = c.Submit(kAlice, "parcel-routing", kTiny);
+  ca.id = queued;
+  ca.reason = "";
+  cancelled = Call([&](client::Io& io) { return client::CancelCommand(*api, ca, io); });
+  ASSERT_EQ(cancelled.code, 0) << cancelled.err;
+  EXPECT_EQ(c.Get(queued).cancel_reason(), "cancelled by alice");
+  EXPECT_EQ(c.Get(queued).error(), "");
+
+  // A failure keeps its error and has no cancel reason.
+  worker = c.StartWorker("w2");
+  const std::string failed = c.Submit(kAlice, "parcel-routing", Plus(kTiny, kDiverges));
+  ASSERT_TRUE(c.WaitState(failed, v1::JOB_STATE_FAILED, 120000)) << ReadFile(worker->log_path());
+  EXPECT_NE(c.Get(failed).error().find("nan"), std::string::npos) << c.Get(failed).error();
+  EXPECT_EQ(c.Get(failed).cancel_reason(), "");
+}
+
+// ---------------------------------------------------------------------------------------------
 // A script in another language: Python with Debian's grpcio and stubs generated at test time.
 
 TEST(ClientPython, AScriptSubmitsAJobAndPollsItToCompletion) {
@@ -843,24 +954,16 @@ TEST(ClientStats, MeanIntervalByHand) {
 }
 
 TEST(ClientSha256, MatchesFipsExamplesAndCoreutils) {
-  // FIPS 180-2, Appendix B (one-block, two-block and long messages) and the empty message;
-  // digests written from memory, so each is also compared with coreutils' sha256sum of the same
-  // bytes.
-  ScopedTempDir dir;
-  const std::vector<std::pair<std::string, std::string>> examples = {
-      {"abc", "ba7816bf8f01cfea414140de5dae2223b00361a396177a9cb410ff61f20015ad"},
-      {"abcdbcdecdefdefgefghfghighijhijkijkljklmklmnlmnomnopnopq",
-       "248d6a61d20638b8e5c026930c3e6039a33ce45964ff2167f6ecedd419db06c1"},
-      {std::string(1000000, 'a'), "cdc76e5c9914fb9281a1c7e284d73e67f1809a48a497200e046d39ccc7112cd0"},
-      {"", "e3b0c44298fc1c149afbf4c8996fb92427ae41e4649b934ca495991b7852b855"}};
-  for (const auto& [message, digest] : examples) {
-    EXPECT_EQ(graft::Sha256Hex(message), digest) << message.size() << " bytes";
-    WriteFile(dir.path() + "/m", message);
-    auto sum = RunCommand("sha256sum " + dir.path() + "/m");
-    ASSERT_EQ(sum.exit_code, 0) << sum.output;
-    EXPECT_EQ(sum.output.substr(0, 64), digest) << message.size() << " bytes";
-  }
+  // FIPS 180-2, Appendix B (one-block, two-block and long messages); digests from memory,
+  // which the coreutils comparison below cross-checks.
+  EXPECT_EQ(graft::Sha256Hex("abc"), "ba7816bf8f01cfea414140de5dae2223b00361a396177a9cb410ff61f20015ad");
+  EXPECT_EQ(graft::Sha256Hex("abcdbcdecdefdefgefghfghighijhijkijkljklmklmnlmnomnopnopq"),
+            "248d6a61d20638b8e5c026930c3e6039a33ce45964ff2167f6ecedd419db06c1");
+  EXPECT_EQ(graft::Sha256Hex(std::string(1000000, 'a')),
+            "cdc76e5c9914fb9281a1c7e284d73e67f1809a48a497200e046d39ccc7112cd0");
+  EXPECT_EQ(graft::Sha256Hex(""), "e3b0c44298fc1c149afbf4c8996fb92427ae41e4649b934ca495991b7852b855");
   // Every length around the block and padding boundaries, fed in uneven pieces, against sha256sum.
+  ScopedTempDir dir;
   std::string data;
   for (int i = 0; i < 300; ++i) data.push_back(static_cast<char>((i * 131 + 7) & 0xff));
   for (size_t len : {1u, 55u, 56u, 63u, 64u, 65u, 119u, 120u, 128u, 300u}) {
@@ -1037,8 +1140,7 @@ class DamagedDownloadApi : public FakeApi {
   }
 };
 
-// A sweep of five jobs, four succeeded with final values chosen by hand and one failed, served
-// two per page (three pages).
+// A sweep of four jobs with final values chosen by hand, served over two pages.
 class HandSweepApi : public FakeApi {
  public:
   HandSweepApi() {

@@ -57,6 +57,7 @@ JobRecord FullJob() {
   job.lease_expires_ms = 1700000060000;
   job.checkpoint_step = 1000;
   job.sweep_id = "sweep-42";
+  job.cancel_reason = "cancelled by mira: wrong \"layer\"; the worker stopped at step 1234";
   return job;
 }
 
@@ -81,6 +82,7 @@ void ExpectSameJob(const JobRecord& a, const JobRecord& b) {
   EXPECT_EQ(a.lease_expires_ms, b.lease_expires_ms);
   EXPECT_EQ(a.checkpoint_step, b.checkpoint_step);
   EXPECT_EQ(a.sweep_id, b.sweep_id);
+  EXPECT_EQ(a.cancel_reason, b.cancel_reason);
 }
 
 JobRecord QueuedJob(const std::string& name, int32_t priority = 0) {
@@ -179,6 +181,7 @@ TEST_F(SqliteJobStore, InsertGetUpdateRoundTripsEveryField) {
   changed.lease_expires_ms = 0;
   changed.checkpoint_step = 16;
   changed.sweep_id = "";
+  changed.cancel_reason = "";
   ASSERT_OK(store_->UpdateJob(changed));
   got = store_->GetJob(*id);
   ASSERT_OK(got);
@@ -717,6 +720,53 @@ TEST_F(SqliteJobStore, FreshFileGetsCurrentSchemaVersion) {
   ASSERT_NE(store_, nullptr);
   EXPECT_EQ(RawQuery(path_, "PRAGMA user_version"), std::to_string(CurrentSchemaVersion()));
   ASSERT_OK(store_->InsertJob(QueuedJob("after-reopen")));
+}
+
+// Step 3 moves a cancelled job's reason out of `error` into `cancel_reason`. A version-2 file is
+// made from a current one by dropping the column (SQLite >= 3.35) and writing the reasons where
+// version 2 kept them; reopening migrates it. Catches a step that adds the column but leaves old
+// cancellations in `error`, and one that also empties the error of a failed job.
+TEST_F(SqliteJobStore, MigrationMovesOldCancelReasonsOutOfError) {
+  ScopedTempDir dir;
+  const std::string path = dir.path() + "/jobs.db";
+  int64_t cancelled_id = 0, failed_id = 0, queued_id = 0;
+  {
+    std::unique_ptr<JobStore> store = OpenOrDie(path);
+    ASSERT_NE(store, nullptr);
+    JobRecord cancelled = QueuedJob("cancelled");
+    cancelled.state = JobState::kCancelled;
+    JobRecord failed = QueuedJob("failed");
+    failed.state = JobState::kFailed;
+    cancelled_id = *store->InsertJob(cancelled);
+    failed_id = *store->InsertJob(failed);
+    queued_id = *store->InsertJob(QueuedJob("queued"));
+  }
+  ASSERT_EQ(CurrentSchemaVersion(), 3) << "this test makes a version-2 file; a later step needs its own test";
+  sqlite3* db = nullptr;
+  ASSERT_EQ(sqlite3_open(path.c_str(), &db), SQLITE_OK);
+  const std::string to_v2 =
+      "ALTER TABLE jobs DROP COLUMN cancel_reason;"
+      "UPDATE jobs SET error = 'cancelled by mira: enough; the worker stopped at step 40' WHERE name = 'cancelled';"
+      "UPDATE jobs SET error = 'the loss became nan at step 3' WHERE name = 'failed';"
+      "PRAGMA user_version = 2;";
+  ASSERT_EQ(sqlite3_exec(db, to_v2.c_str(), nullptr, nullptr, nullptr), SQLITE_OK) << sqlite3_errmsg(db);
+  sqlite3_close(db);
+
+  std::unique_ptr<JobStore> store = OpenOrDie(path);
+  ASSERT_NE(store, nullptr);
+  EXPECT_EQ(RawQuery(path, "PRAGMA user_version"), "3");
+  absl::StatusOr<JobRecord> cancelled = store->GetJob(cancelled_id);
+  ASSERT_OK(cancelled);
+  EXPECT_EQ(cancelled->cancel_reason, "cancelled by mira: enough; the worker stopped at step 40");
+  EXPECT_EQ(cancelled->error, "");
+  absl::StatusOr<JobRecord> failed = store->GetJob(failed_id);
+  ASSERT_OK(failed);
+  EXPECT_EQ(failed->error, "the loss became nan at step 3");
+  EXPECT_EQ(failed->cancel_reason, "");
+  absl::StatusOr<JobRecord> queued = store->GetJob(queued_id);
+  ASSERT_OK(queued);
+  EXPECT_EQ(queued->cancel_reason, "");
+  EXPECT_EQ(queued->name, "queued");
 }
 
 TEST_F(SqliteJobStore, RefusesNewerSchemaVersion) {

@@ -17,6 +17,7 @@
 #include "graft/v1/graft.grpc.pb.h"
 #include "proto/sha256.h"
 #include "configs/reader/spec.h"
+#include "trainer/train/analysis.h"
 #include "trainer/train/trainer.h"
 #include "trainer/worker/commands.h"
 
@@ -90,6 +91,9 @@ class JobRun {
   grpc::Status FetchCheckpoint(const std::string& path);
   void FinishWith(v1::FinishJobRequest request);
   void FlushPoints(int64_t give_up_ms);
+  // Runs the spec's `scan:` and `das:` blocks on the trained network in `dir`, as `graft-worker
+  // run` does, with the job's threads capped by --threads. Fails naming the analysis.
+  absl::Status AnalyseTrained(const config::ResolvedJob& job, const fs::path& dir);
 
   Link& link_;
   const ServeArgs& args_;
@@ -306,6 +310,11 @@ void JobRun::Execute() {
 
   std::thread reporter([this] { ReporterLoop(); });
   auto outcome = train::Train(*job, options);
+  // Analysis blocks run while the reporter still renews the lease (a DAS search takes seconds).
+  absl::Status analysed = absl::OkStatus();
+  if (outcome.ok() && outcome->kind == train::RunOutcome::Kind::kFinished && !halt_) {
+    analysed = AnalyseTrained(*job, dir);
+  }
   {
     std::lock_guard<std::mutex> lock(mu_);
     reporter_done_ = true;
@@ -321,6 +330,8 @@ void JobRun::Execute() {
   v1::FinishJobRequest r;
   if (!outcome.ok()) {
     r.set_failed_reason(std::string(outcome.status().message()));
+  } else if (!analysed.ok()) {
+    r.set_failed_reason(std::string(analysed.message()));
   } else if (outcome->kind == train::RunOutcome::Kind::kInterrupted) {
     if (cancelled_) {
       r.set_stopped_reason(absl::StrCat("stopped at step ", outcome->step));
@@ -328,7 +339,13 @@ void JobRun::Execute() {
       r.set_handed_back_reason(absl::StrCat("worker stopping (signal) at step ", outcome->step));
     }
   } else {
-    for (const char* name : {"weights.pt", "metrics.jsonl", "spec.yaml", "result.json"}) {
+    // The scan and DAS files exist only when the spec has those blocks.
+    std::vector<std::string> names = {"weights.pt", "metrics.jsonl", "spec.yaml", "failures.jsonl"};
+    for (const char* optional : {"scan.json", "scan.tsv", "scan.svg", "das.json", "rotation.pt"}) {
+      if (fs::exists(dir / optional)) names.push_back(optional);
+    }
+    names.push_back("result.json");
+    for (const std::string& name : names) {
       grpc::Status s = UploadFile(name, (dir / name).string(), outcome->step);
       if (!s.ok()) {
         err_ << "graft-worker: upload of " << name << " failed: " << s.error_message() << "\n";
@@ -345,6 +362,30 @@ void JobRun::Execute() {
   FinishWith(r);
   err_ << "graft-worker: " << lease_.job_id() << " attempt " << lease_.attempt() << " done\n";
   fs::remove_all(dir, ec);
+}
+
+absl::Status JobRun::AnalyseTrained(const config::ResolvedJob& job, const fs::path& dir) {
+  if (!job.spec.scan.present && !job.spec.das.present) return absl::OkStatus();
+  config::ResolvedJob capped = job;
+  if (args_.threads > 0) capped.spec.training.threads = std::min(capped.spec.training.threads, args_.threads);
+  train::AnalysisOptions options;
+  options.weights_path = (dir / "weights.pt").string();
+  options.out_dir = dir.string();
+  if (job.spec.scan.present) {
+    auto summary = train::ScanStored(capped, options);
+    if (!summary.ok()) {
+      return absl::Status(summary.status().code(), absl::StrCat("scan after training: ", summary.status().message()));
+    }
+    err_ << "graft-worker: " << lease_.job_id() << ": " << *summary;
+  }
+  if (job.spec.das.present) {
+    auto summary = train::DasStored(capped, options);
+    if (!summary.ok()) {
+      return absl::Status(summary.status().code(), absl::StrCat("DAS after training: ", summary.status().message()));
+    }
+    err_ << "graft-worker: " << lease_.job_id() << ": " << *summary;
+  }
+  return absl::OkStatus();
 }
 
 }  // namespace
