@@ -21,6 +21,7 @@
 #include "tests/cluster.h"
 #include "tests/test_util.h"
 #include "configs/reader/spec.h"
+#include "configs/reader/sweep.h"
 
 namespace graft {
 namespace {
@@ -185,6 +186,17 @@ TEST(ClientSweep, ExpandsGridTogetherSampleAndSeedsIntoTheRightJobs) {
   EXPECT_TRUE(wrong_names.empty()) << wrong_names.size() << " of 16 names differ, e.g. " << wrong_names.front();
   EXPECT_EQ(names.size(), 16u);
   EXPECT_EQ(lrs.size(), 2u);  // two random draws, shared by every grid point
+  // They are the draws of the expansion that SampleDrawsFitTheirDistributionsPerScipy checks
+  // against SciPy: the server stored what the library drew.
+  auto plan = config::PlanFromText(ReadFile(file), file, args.overrides, 1000);
+  ASSERT_TRUE(plan.ok()) << plan.status();
+  std::set<std::string> planned_lrs;
+  for (const config::PlannedJob& p : plan->jobs) {
+    char lr[32];
+    std::snprintf(lr, sizeof(lr), "%.17g", p.job.spec.training.optimizer.lr);
+    planned_lrs.insert(lr);
+  }
+  EXPECT_EQ(lrs, planned_lrs);
 
   // `list --sweep` pages through and finds the same 16.
   client::ListArgs la;
@@ -200,7 +212,8 @@ TEST(ClientSweep, AnInvalidCombinationRejectsTheWholeSweepAndStoresNothing) {
   auto api = ApiFor(c);
   ScopedTempDir dir;
   const std::string file = dir.path() + "/bad-sweep.yaml";
-  // Layer 7 does not exist in a network of three hidden layers: combination 2 of 4 is invalid.
+  // Layer 7 does not exist in a network of three hidden layers: combinations 3 and 4 of 4 (layer
+  // 7 with seeds 1 and 2) are invalid, and the first of them is named.
   WriteFile(file, ParcelConfigWith("sweep:\n  grid:\n    alignment.local.layer: [1, 7]\n  seeds: [1, 2]\n"));
   // Through the server directly (no local check), to get the server's own message.
   v1::SubmitJobRequest req;
@@ -253,6 +266,44 @@ TEST(ClientSweep, AnInvalidCombinationRejectsTheWholeSweepAndStoresNothing) {
   auto bin = RunCommand(BinaryDir() + "/bin/graft check " + typo + " 2>&1");
   EXPECT_EQ(bin.exit_code, 2);
   EXPECT_EQ(bin.output, s.error_message() + "\n");
+}
+
+// The draws of `sample`, many of them, against SciPy's distributions (tests/python/check_draws.py):
+// log_between must be log-uniform (Kolmogorov-Smirnov against scipy.stats.loguniform), between
+// uniform (against scipy.stats.uniform) and whole_between a fair choice of every whole number in
+// its bounds, both ends included (chi-square, scipy.stats.chisquare). 2000 draws from a fixed
+// seed, so the outcome is the same on every run; level 0.001 (see the script). Being inside the
+// bounds, all ExpandsGridTogetherSampleAndSeedsIntoTheRightJobs can check with two draws, would
+// not tell a uniform draw from a log-uniform one. The same library function expands the sweep in
+// `graft check`, `graft submit` and graftd.
+TEST(ClientSweep, SampleDrawsFitTheirDistributionsPerScipy) {
+  const int kDraws = 2000;
+  const std::string text = ParcelConfigWith("sweep:\n  sample:\n    count: " + std::to_string(kDraws) +
+                                            "\n    seed: 12\n    params:\n"
+                                            "      training.optimizer.lr: {log_between: [0.0003, 0.01]}\n"
+                                            "      training.loss_weights.interchange: {between: [0.25, 4.0]}\n"
+                                            "      training.batch_size: {whole_between: [16, 35]}\n");
+  auto plan = config::PlanFromText(text, "draws.yaml", {}, kDraws);
+  ASSERT_TRUE(plan.ok()) << plan.status();
+  ASSERT_EQ(plan->jobs.size(), static_cast<size_t>(kDraws));
+  json lr = json::array(), weight = json::array(), batch = json::array();
+  for (const config::PlannedJob& job : plan->jobs) {
+    lr.push_back(job.job.spec.training.optimizer.lr);
+    weight.push_back(job.job.spec.training.interchange_weight);
+    batch.push_back(job.job.spec.training.batch_size);
+  }
+  json draws = {{"alpha", 0.001},
+                {"draws",
+                 {{{"name", "log_between lr"}, {"kind", "log_uniform"}, {"low", 0.0003}, {"high", 0.01}, {"values", lr}},
+                  {{"name", "between interchange"}, {"kind", "uniform"}, {"low", 0.25}, {"high", 4.0}, {"values", weight}},
+                  {{"name", "whole_between batch_size"}, {"kind", "whole_uniform"}, {"low", 16}, {"high", 35},
+                   {"values", batch}}}}};
+  ScopedTempDir dir;
+  WriteFile(dir.path() + "/draws.json", draws.dump());
+  auto py = RunCommand(std::string(::graft::testing::SystemPython()) + " " + SourceDir() +
+                       "/tests/python/check_draws.py " + dir.path() + "/draws.json");
+  EXPECT_EQ(py.exit_code, 0) << py.output;
+  EXPECT_NE(py.output.find("checked 3 draws at level 0.001"), std::string::npos) << py.output;
 }
 
 // ---------------------------------------------------------------------------------------------
@@ -954,16 +1005,24 @@ TEST(ClientStats, MeanIntervalByHand) {
 }
 
 TEST(ClientSha256, MatchesFipsExamplesAndCoreutils) {
-  // FIPS 180-2, Appendix B (one-block, two-block and long messages); digests from memory,
-  // which the coreutils comparison below cross-checks.
-  EXPECT_EQ(graft::Sha256Hex("abc"), "ba7816bf8f01cfea414140de5dae2223b00361a396177a9cb410ff61f20015ad");
-  EXPECT_EQ(graft::Sha256Hex("abcdbcdecdefdefgefghfghighijhijkijkljklmklmnlmnomnopnopq"),
-            "248d6a61d20638b8e5c026930c3e6039a33ce45964ff2167f6ecedd419db06c1");
-  EXPECT_EQ(graft::Sha256Hex(std::string(1000000, 'a')),
-            "cdc76e5c9914fb9281a1c7e284d73e67f1809a48a497200e046d39ccc7112cd0");
-  EXPECT_EQ(graft::Sha256Hex(""), "e3b0c44298fc1c149afbf4c8996fb92427ae41e4649b934ca495991b7852b855");
-  // Every length around the block and padding boundaries, fed in uneven pieces, against sha256sum.
+  // FIPS 180-2, Appendix B (one-block, two-block and long messages) and the empty message;
+  // digests written from memory, so each is also compared with coreutils' sha256sum of the same
+  // bytes.
   ScopedTempDir dir;
+  const std::vector<std::pair<std::string, std::string>> examples = {
+      {"abc", "ba7816bf8f01cfea414140de5dae2223b00361a396177a9cb410ff61f20015ad"},
+      {"abcdbcdecdefdefgefghfghighijhijkijkljklmklmnlmnomnopnopq",
+       "248d6a61d20638b8e5c026930c3e6039a33ce45964ff2167f6ecedd419db06c1"},
+      {std::string(1000000, 'a'), "cdc76e5c9914fb9281a1c7e284d73e67f1809a48a497200e046d39ccc7112cd0"},
+      {"", "e3b0c44298fc1c149afbf4c8996fb92427ae41e4649b934ca495991b7852b855"}};
+  for (const auto& [message, digest] : examples) {
+    EXPECT_EQ(graft::Sha256Hex(message), digest) << message.size() << " bytes";
+    WriteFile(dir.path() + "/m", message);
+    auto sum = RunCommand("sha256sum " + dir.path() + "/m");
+    ASSERT_EQ(sum.exit_code, 0) << sum.output;
+    EXPECT_EQ(sum.output.substr(0, 64), digest) << message.size() << " bytes";
+  }
+  // Every length around the block and padding boundaries, fed in uneven pieces, against sha256sum.
   std::string data;
   for (int i = 0; i < 300; ++i) data.push_back(static_cast<char>((i * 131 + 7) & 0xff));
   for (size_t len : {1u, 55u, 56u, 63u, 64u, 65u, 119u, 120u, 128u, 300u}) {
@@ -1140,7 +1199,8 @@ class DamagedDownloadApi : public FakeApi {
   }
 };
 
-// A sweep of four jobs with final values chosen by hand, served over two pages.
+// A sweep of five jobs, four succeeded with final values chosen by hand and one failed, served
+// two per page (three pages).
 class HandSweepApi : public FakeApi {
  public:
   HandSweepApi() {
