@@ -13,6 +13,7 @@
 #include <grpcpp/grpcpp.h>
 
 #include "graft/v1/graft.pb.h"
+#include "proto/tls.h"
 
 namespace graft::client {
 
@@ -36,16 +37,30 @@ class Api {
   // Calls `on_chunk` for every chunk of the artifact; the first chunk carries size and SHA-256.
   virtual grpc::Status Download(const std::string& job_id, const std::string& name,
                                 const std::function<bool(const v1::ArtifactChunk&)>& on_chunk) = 0;
+  // The worker fleet. The default (for fakes that do not need it) is UNIMPLEMENTED.
+  virtual grpc::Status ListWorkers(bool include_gone, v1::ListWorkersResponse* response) {
+    (void)include_gone;
+    (void)response;
+    return grpc::Status(grpc::StatusCode::UNIMPLEMENTED, "ListWorkers");
+  }
 };
 
 struct Connection {
   std::string server;               // host:port of graftd
   std::string token;                // bearer token
   int64_t call_timeout_ms = 30000;  // deadline of each unary call and of each download
+  tls::ClientCredentials tls;       // loaded by tls::LoadClientCredentials; default: plaintext
 };
 
-// An Api over an insecure channel to `connection.server` (graftd has no TLS yet).
+// An Api over a channel to `connection.server`: TLS when `connection.tls` is enabled, else
+// plaintext. A call that fails with UNAVAILABLE is diagnosed once with tls::Diagnose; when the
+// diagnosis names a misconfiguration (wrong CA, expired or misnamed certificate, plaintext on
+// one side, a missing or refused client certificate) the status keeps UNAVAILABLE and carries
+// that sentence as its message (IsTlsProblem() is then true).
 std::unique_ptr<Api> CreateGrpcApi(const Connection& connection);
+
+// True for a status whose message is a TLS diagnosis rather than gRPC's own text.
+bool IsTlsProblem(const grpc::Status& status);
 
 }  // namespace graft::client
 

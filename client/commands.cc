@@ -39,6 +39,12 @@ bool HasTopLevelKey(const std::string& spec_yaml, const std::string& key) {
 int Report(const grpc::Status& s, const std::string& what, Io& io) {
   switch (s.error_code()) {
     case grpc::StatusCode::UNAVAILABLE:
+      if (IsTlsProblem(s)) {
+        io.err << "graft: cannot connect to graftd at " << io.server << ": " << s.error_message()
+               << "\n  TLS settings come from --ca-file, --cert, --key, --tls-server-name, GRAFT_CA_FILE, "
+                  "GRAFT_CERT_FILE, GRAFT_KEY_FILE, GRAFT_TLS_SERVER_NAME or the client config\n";
+        return kExitUnreachable;
+      }
       io.err << "graft: cannot reach graftd at " << io.server << ": " << s.error_message()
              << "\n  is graftd running there? the address comes from --server, GRAFT_SERVER or the client config\n";
       return kExitUnreachable;
@@ -268,7 +274,7 @@ std::string Number(double v) {
 
 const std::vector<std::string>& CommandNames() {
   static const std::vector<std::string> kNames = {"check", "submit", "list",    "show",    "watch",   "wait",
-                                                  "cancel", "metrics", "fetch", "compare", "resubmit"};
+                                                  "cancel", "metrics", "fetch", "compare", "resubmit", "workers"};
   return kNames;
 }
 
@@ -826,6 +832,82 @@ int ResubmitCommand(Api& api, const ResubmitArgs& args, Io& io) {
   } else {
     io.out << "resubmitted " << t.id << " as " << resp.job_id() << " (" << job.name() << ")\n";
   }
+  return kExitOk;
+}
+
+namespace {
+
+std::string WorkerStateName(v1::WorkerState s) {
+  switch (s) {
+    case v1::WORKER_STATE_IDLE: return "idle";
+    case v1::WORKER_STATE_TRAINING: return "training";
+    case v1::WORKER_STATE_GONE: return "gone";
+    case v1::WORKER_STATE_PENDING: return "pending";
+    default: return "unknown";
+  }
+}
+
+// "4711" for a plain Slurm job, "4700_3 (4711)" for an array task, "-" outside Slurm.
+std::string SlurmText(const v1::Worker& w) {
+  if (!w.slurm_array_job_id().empty()) {
+    std::string t = w.slurm_array_job_id() + "_" + w.slurm_array_task_id();
+    if (!w.slurm_job_id().empty() && w.slurm_job_id() != w.slurm_array_job_id()) t += " (" + w.slurm_job_id() + ")";
+    return t;
+  }
+  return w.slurm_job_id().empty() ? "-" : w.slurm_job_id();
+}
+
+}  // namespace
+
+int WorkersCommand(Api& api, const WorkersArgs& args, Io& io) {
+  v1::ListWorkersResponse resp;
+  grpc::Status s = api.ListWorkers(args.all, &resp);
+  if (!s.ok()) return Report(s, "workers", io);
+  const int64_t now = io.now_ms();
+  if (args.json) {
+    json arr = json::array();
+    for (const auto& w : resp.workers()) {
+      arr.push_back(json{{"id", w.id()},
+                         {"host", w.host()},
+                         {"cores", w.cores()},
+                         {"threads", w.threads()},
+                         {"version", w.version()},
+                         {"state", WorkerStateName(w.state())},
+                         {"job_id", w.job_id()},
+                         {"step", w.step()},
+                         {"slurm_job_id", w.slurm_job_id()},
+                         {"slurm_array_job_id", w.slurm_array_job_id()},
+                         {"slurm_array_task_id", w.slurm_array_task_id()},
+                         {"registered_ms", w.registered_ms()},
+                         {"last_seen_ms", w.last_seen_ms()},
+                         {"jobs_finished", w.jobs_finished()},
+                         {"gone_reason", w.gone_reason()}});
+    }
+    io.out << arr.dump() << "\n";
+    return kExitOk;
+  }
+  if (resp.workers().empty()) {
+    io.out << (args.all ? "no workers have registered\n" : "no workers (graft workers --all shows those gone)\n");
+    return kExitOk;
+  }
+  std::vector<std::vector<std::string>> rows;
+  int counts[5] = {0, 0, 0, 0, 0};
+  for (const auto& w : resp.workers()) {
+    std::string state = WorkerStateName(w.state());
+    if (w.state() == v1::WORKER_STATE_TRAINING) state += " " + w.job_id() + " at step " + std::to_string(w.step());
+    if (w.state() == v1::WORKER_STATE_GONE && !w.gone_reason().empty()) state += " (" + w.gone_reason() + ")";
+    const bool pending = w.state() == v1::WORKER_STATE_PENDING;
+    rows.push_back({w.id(), pending ? "-" : w.host(), pending ? "-" : std::to_string(w.threads()), SlurmText(w),
+                    state, pending ? "-" : FormatDuration(now - w.last_seen_ms()) + " ago",
+                    pending ? "-" : std::to_string(w.jobs_finished())});
+    const int k = static_cast<int>(w.state());
+    if (k >= 0 && k < 5) ++counts[k];
+  }
+  io.out << RenderTable({"ID", "HOST", "THREADS", "SLURM JOB", "STATE", "LAST REPORT", "JOBS FINISHED"}, rows);
+  io.out << resp.workers_size() << " workers: " << counts[v1::WORKER_STATE_IDLE] << " idle, "
+         << counts[v1::WORKER_STATE_TRAINING] << " training, " << counts[v1::WORKER_STATE_PENDING] << " pending";
+  if (args.all) io.out << ", " << counts[v1::WORKER_STATE_GONE] << " gone";
+  io.out << "\n";
   return kExitOk;
 }
 

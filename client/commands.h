@@ -12,22 +12,21 @@
 
 #include "client/api.h"
 #include "nlohmann/json.hpp"
+#include "proto/exit_codes.h"
 
 namespace graft::client {
 
-// Exit codes of every command (README "The graft client" lists them for users).
-enum ExitCode : int {
-  kExitOk = 0,             // done; for wait/watch: every job succeeded
-  kExitFailure = 1,        // the request was refused or failed (no such job, a job that may not be
-                           // cancelled or resubmitted, a file that cannot be read or written,
-                           // a checksum mismatch)
-  kExitInvalidConfig = 2,  // the config (or a --set value, or a sweep) is invalid
-  kExitUsage = 3,          // a command-line mistake: unknown command or flag, a malformed id
-  kExitJobFailed = 4,      // wait/watch/submit --watch: at least one job failed
-  kExitJobCancelled = 5,   // wait/watch/submit --watch: none failed, at least one was cancelled
-  kExitUnreachable = 6,    // graftd could not be reached, or refused the token
-  kExitTimeout = 7,        // wait/watch --timeout passed before the jobs ended
-};
+// Every command returns one of the exit codes shared by graft, graft-worker and graftd
+// (proto/exit_codes.h; README "Exit codes").
+using ::graft::ExitCode;
+using ::graft::kExitFailure;
+using ::graft::kExitInvalidConfig;
+using ::graft::kExitJobCancelled;
+using ::graft::kExitJobFailed;
+using ::graft::kExitOk;
+using ::graft::kExitTimeout;
+using ::graft::kExitUnreachable;
+using ::graft::kExitUsage;
 
 struct Io {
   Io(std::ostream& out_stream, std::ostream& err_stream) : out(out_stream), err(err_stream) {}
@@ -97,6 +96,10 @@ struct ResubmitArgs {
   std::string id;
   bool json = false;
 };
+struct WorkersArgs {
+  bool all = false;   // also the workers that are gone
+  bool json = false;
+};
 
 // Offline: validates CONFIG (and a sweep's every combination) with the server's own library and
 // prints its summary, or the server's exact error lines on `err`.
@@ -113,6 +116,9 @@ int MetricsCommand(Api& api, const MetricsArgs& args, Io& io);
 int FetchCommand(Api& api, const FetchArgs& args, Io& io);
 int CompareCommand(Api& api, const CompareArgs& args, Io& io);
 int ResubmitCommand(Api& api, const ResubmitArgs& args, Io& io);
+// The worker fleet: one row per worker (id, host, threads, Slurm job, state, last report, jobs
+// finished); `json`: an array of objects with the fields of v1::Worker in snake_case.
+int WorkersCommand(Api& api, const WorkersArgs& args, Io& io);
 
 // Parses "j-N" / "s-N"; on failure writes a message with a suggestion to `err` and returns
 // false. `allow_sweep` false refuses s-N with a message saying the command takes a job.

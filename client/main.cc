@@ -26,7 +26,8 @@ int64_t NowMs() {
 std::string CommandWord(int argc, char** argv) {
   for (int i = 1; i < argc; ++i) {
     const std::string a = argv[i];
-    if (a == "--server" || a == "--token" || a == "--token-file") {
+    if (a == "--server" || a == "--token" || a == "--token-file" || a == "--ca-file" || a == "--cert" || a == "--key" ||
+        a == "--tls-server-name") {
       ++i;
       continue;
     }
@@ -56,10 +57,18 @@ int main(int argc, char** argv) {
   app.add_option("--server", server, "graftd address host:port (else GRAFT_SERVER, the client config, 127.0.0.1:7070)");
   app.add_option("--token", token, "bearer token (else GRAFT_TOKEN or the client config)");
   app.add_option("--token-file", token_file, "file holding the bearer token");
+  std::string ca_file, cert_file, key_file, tls_server_name;
+  app.add_option("--ca-file", ca_file, "TLS: the PEM CA that signed graftd's certificate (else GRAFT_CA_FILE, ca_file)");
+  app.add_option("--cert", cert_file, "mutual TLS: your PEM client certificate (else GRAFT_CERT_FILE, cert_file)");
+  app.add_option("--key", key_file, "mutual TLS: its unencrypted PEM key (else GRAFT_KEY_FILE, key_file)");
+  app.add_option("--tls-server-name", tls_server_name,
+                 "TLS: the name graftd's certificate carries, when not the --server host (else GRAFT_TLS_SERVER_NAME)");
   app.footer(
-      "Exit codes: 0 ok; 1 request refused or failed; 2 invalid config; 3 usage error; 4 a job failed; "
-      "5 a job was cancelled; 6 graftd unreachable or token refused; 7 --timeout passed.\n"
-      "Client config: ~/.config/graft/client.yaml (or $GRAFT_CONFIG) with server: and token: or token_file:.\n");
+      "Exit codes (shared with graft-worker and graftd; README \"Exit codes\"): 0 ok; 1 request refused or "
+      "failed; 2 invalid config or settings (also: no token); 3 usage error; 4 a job failed; 5 a job was "
+      "cancelled; 6 graftd unreachable or token refused; 7 --timeout passed.\n"
+      "Client config: ~/.config/graft/client.yaml (or $GRAFT_CONFIG) with server: and token: or token_file:, and "
+      "for TLS ca_file: (cert_file:, key_file:, tls_server_name:).\n");
 
   CheckArgs check;
   auto* c_check = app.add_subcommand("check", "validate a config offline (a sweep: every combination)");
@@ -76,6 +85,10 @@ int main(int argc, char** argv) {
   c_submit->add_flag("--watch", submit.watch, "then watch it until it ends (exit codes as wait)");
   c_submit->add_flag("--json", submit.json, "print the ids as JSON (with --watch: events as JSON lines)");
 
+  WorkersArgs workers;
+  auto* c_workers = app.add_subcommand("workers", "the worker fleet: idle, training, pending in Slurm (and gone)");
+  c_workers->add_flag("--all", workers.all, "also list workers that are gone");
+  c_workers->add_flag("--json", workers.json, "print a JSON array of workers");
   ListArgs list;
   auto* c_list = app.add_subcommand("list", "list your jobs, newest first");
   c_list->add_option("--state", list.state, "queued | running | succeeded | failed | cancelled");
@@ -162,22 +175,33 @@ int main(int argc, char** argv) {
   sources.flag_server = server;
   sources.flag_token = token;
   sources.flag_token_file = token_file;
+  sources.flag_ca_file = ca_file;
+  sources.flag_cert_file = cert_file;
+  sources.flag_key_file = key_file;
+  sources.flag_tls_server_name = tls_server_name;
   sources.getenv = [](const char* name) -> const char* { return std::getenv(name); };
   auto settings = ResolveSettings(sources);
   if (!settings.ok()) {
     std::cerr << "graft: " << settings.status().message() << "\n";
-    return kExitUsage;
+    return kExitInvalidConfig;  // the settings, like a config, are input
   }
   if (settings->token.empty()) {
     std::cerr << "graft: no token: pass --token or --token-file, set GRAFT_TOKEN, or put token: (or token_file:) in "
               << (ConfigFilePath(sources.getenv).empty() ? "~/.config/graft/client.yaml" : ConfigFilePath(sources.getenv))
               << "\n";
-    return kExitUsage;
+    return kExitInvalidConfig;  // a required setting given nowhere
   }
   io.server = settings->server;
   Connection connection;
   connection.server = settings->server;
   connection.token = settings->token;
+  auto tls = graft::tls::LoadClientCredentials(
+      {settings->ca_file, settings->cert_file, settings->key_file, settings->tls_server_name});
+  if (!tls.ok()) {
+    std::cerr << "graft: " << tls.status().message() << "\n";
+    return kExitInvalidConfig;  // TLS files, like the other settings, are input
+  }
+  connection.tls = std::move(*tls);
   std::unique_ptr<Api> api = CreateGrpcApi(connection);
 
   if (c_submit->parsed()) return SubmitCommand(*api, submit, io);
@@ -202,5 +226,6 @@ int main(int argc, char** argv) {
     return CompareCommand(*api, compare, io);
   }
   if (c_resubmit->parsed()) return ResubmitCommand(*api, resubmit, io);
+  if (c_workers->parsed()) return WorkersCommand(*api, workers, io);
   return kExitUsage;
 }

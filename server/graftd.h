@@ -5,12 +5,17 @@
 #define GRAFT_SERVER_GRAFTD_H_
 
 #include <atomic>
+#include <string>
 
 #include "server/graftd_config.h"
 
 namespace graft::server {
 
 int RunGraftd(const GraftdConfig& config, const std::atomic<bool>* stop);
+
+// The address the launcher's workers dial when `launcher.server` is not set: the listen host
+// with the bound port, or this machine's hostname when graftd listens on every interface.
+std::string WorkerAddress(const std::string& listen, int port);
 
 }  // namespace graft::server
 

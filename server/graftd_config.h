@@ -8,6 +8,7 @@
 
 #include "absl/status/statusor.h"
 #include "server/job_store.h"
+#include "server/launcher.h"
 
 namespace graft::server {
 
@@ -20,8 +21,21 @@ struct GraftdConfig {
   int64_t max_config_bytes = 1 << 20;      // larger submissions are refused
   int64_t max_sweep_jobs = 1000;           // larger sweeps are refused before anything is stored
   Durability durability = Durability::kNormal;  // normal: survives a killed process; full: power loss
-  bool allow_plaintext = false;            // needed for a non-loopback listen address (no TLS yet)
+  bool allow_plaintext = false;            // needed for a non-loopback listen address without TLS
   std::string port_file;                   // if set, the bound port is written here once listening
+  // TLS: graftd's certificate (PEM, may carry its chain) and unencrypted key, both or neither;
+  // empty: plaintext. With TLS a non-loopback listen address needs no allow_plaintext.
+  std::string tls_cert;
+  std::string tls_key;
+  // Mutual TLS: the PEM CA certificate(s) client certificates must be signed by; clients
+  // without one are refused at the handshake. REQUIRES tls_cert. Empty: no client certificates.
+  std::string client_ca;
+
+  // The `launcher:` block: graftd submits Slurm array tasks of workers when the queue needs
+  // them (server/launcher.h). Absent: graftd starts no workers.
+  LauncherOptions launcher;
+
+  bool tls() const { return !tls_cert.empty() || !tls_key.empty(); }
 };
 
 // Applies the keys of a graftd YAML file to `config`; errors name file:line:col and the key.
@@ -29,6 +43,11 @@ absl::Status LoadGraftdConfig(const std::string& path, GraftdConfig* config);
 
 // True for 127.0.0.0/8, [::1], localhost.
 bool IsLoopbackAddress(const std::string& listen);
+
+// The transport rules, before any file is read: tls_cert and tls_key come together, client_ca
+// needs them, and without TLS a non-loopback listen address needs allow_plaintext.
+// InvalidArgument with a message saying what to do.
+absl::Status CheckTransport(const GraftdConfig& config);
 
 }  // namespace graft::server
 

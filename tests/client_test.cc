@@ -2,6 +2,7 @@
 // as real processes on loopback (tests/cluster.h), the `graft` binary's exit codes, a Python
 // script on Debian's python3-grpcio, and its pieces (t quantile, SHA-256, settings, rendering)
 // against outside references: SciPy, FIPS 180-2's worked examples, coreutils' sha256sum.
+#include <csignal>
 #include <cmath>
 #include <cstdio>
 #include <fstream>
@@ -422,8 +423,11 @@ TEST(ClientWatch, FromStepZeroAndFromAMiddleStepSeesEveryPointOnce) {
   Ran tty = Call([&](client::Io& io) { return client::WatchCommand(*api, w, io); }, true);
   EXPECT_EQ(tty.code, 0);
   EXPECT_NE(tty.out.find("\x1b[J"), std::string::npos);
-  for (const char* s : {"accuracy", "1.00 |", "0.50 |", "0.00 |", "steps", "3000", "task accuracy (acc_held_out)",
-                        "IIA, set local (iia_by_set)", "IIA, set local+careful (iia_by_set)"}) {
+  // The legend numbers the sets in training.interventions' order ([local], [careful],
+  // [local, careful] in the shipped config), which is not their alphabetical order.
+  for (const char* s : {"accuracy", "1.00 |", "0.50 |", "0.00 |", "steps", "3000", "T = task accuracy (acc_held_out)",
+                        "1 = IIA, set local (iia_by_set)", "2 = IIA, set careful (iia_by_set)",
+                        "3 = IIA, set local+careful (iia_by_set)"}) {
     EXPECT_NE(tty.out.find(s), std::string::npos) << s << "\n" << tty.out;
   }
 }
@@ -508,6 +512,108 @@ TEST(ClientWait, ExitCodesForSucceededFailedCancelledAndTimeout) {
   EXPECT_EQ(away.exit_code, 6) << away.output;
   auto wrong = RunCommand(BinaryDir() + "/bin/graft --server " + c.address() + " --token nope list");
   EXPECT_EQ(wrong.exit_code, 6) << wrong.output;
+}
+
+// ---------------------------------------------------------------------------------------------
+// One table of exit codes for graft, graft-worker and graftd (README "Exit codes"), on the real
+// binaries. The numbers are written out, not taken from proto/exit_codes.h: they are the contract
+// scripts rely on, and a changed constant must fail here. graft's 4, 5, 6 and 7 need jobs and a
+// coordinator and are checked in ClientWait.ExitCodesForSucceededFailedCancelledAndTimeout.
+
+struct ExitCase {
+  std::string command;   // run with /bin/sh from a temporary directory
+  int code;              // the README's code
+  std::string message;   // a fragment of what the program says, so the code has its reason
+};
+
+TEST(ExitCodes, OneTableForGraftGraftWorkerAndGraftd) {
+  ScopedTempDir dir;
+  const std::string d = dir.path();
+  // graft with no server, token or client config from this process's environment.
+  auto graft_with = [&](const std::string& env) {
+    return "env -u GRAFT_TOKEN -u GRAFT_SERVER -u GRAFT_CONFIG HOME=" + d + " " + env + " " + BinaryDir() + "/bin/graft";
+  };
+  const std::string graft = graft_with("");
+  const std::string worker = BinaryDir() + "/bin/graft-worker";
+  const std::string graftd = BinaryDir() + "/bin/graftd";
+  const std::string config = SourceDir() + "/configs/parcel-routing.yaml";
+  WriteFile(d + "/bad.yaml", ParcelConfigWith("").replace(ParcelConfigWith("").find("activation: relu"), 16,
+                                                          "activation: rleu"));
+  WriteFile(d + "/client.yaml", "server: 127.0.0.1:1\ntokn: abc\n");
+  WriteFile(d + "/graftd-bad.yaml", "listen: 127.0.0.1:0\nlease_secs: 3\n");
+  WriteFile(d + "/tokens.yaml", "[]\n");
+  WriteFile(d + "/a-file", "not a directory\n");
+  const std::string small = " --set training.steps=60 --set training.batch_size=32 --set evaluation.every=20"
+                            " --set evaluation.triples=128 --set network.hidden=[16,16,16]"
+                            " --set alignment.local.units=0-3 --set alignment.careful.units=4-7"
+                            " --set training.checkpoint_every=10";
+  const std::vector<ExitCase> cases = {
+      // graft: 0, 1, 2 (config and settings), 3, 6.
+      {graft + " --help", 0, "Exit codes"},
+      {graft + " check " + config, 0, "job parcel-routing"},
+      {graft + " check " + d + "/missing.yaml", 1, "cannot open"},
+      {graft + " check " + d + "/bad.yaml", 2, "did you mean 'relu'?"},
+      {graft + " --server 127.0.0.1:1 --token x submit " + d + "/bad.yaml", 2, "did you mean 'relu'?"},
+      {graft + " list", 2, "no token"},
+      {graft_with("GRAFT_CONFIG=" + d + "/client.yaml") + " list", 2, "client.yaml:2:1: unknown key 'tokn'"},
+      {graft, 3, "graft --help"},
+      {graft + " shwo j-1", 3, "did you mean 'show'?"},
+      {graft + " check", 3, "CONFIG"},
+      {graft + " list --bogus", 3, "--bogus"},
+      {graft + " --token x show 3", 3, "did you mean 'j-3'?"},
+      {graft + " --token x list --state runing", 3, "did you mean 'running'?"},
+      {graft + " --server 127.0.0.1:1 --token x list", 6, "cannot reach graftd"},
+      // graft-worker, every subcommand: 0, 1, 2, 3, 8.
+      {worker + " --help", 0, "Exit codes"},
+      {worker + " check " + config, 0, "job parcel-routing"},
+      {worker + " check " + d + "/missing.yaml", 1, "missing.yaml"},
+      {worker + " evaluate " + config + " --weights " + d + "/none.pt --out " + d + "/e", 1, "none.pt"},
+      {worker + " check " + d + "/bad.yaml", 2, "did you mean 'relu'?"},
+      {worker + " run " + d + "/bad.yaml --out " + d + "/r", 2, "did you mean 'relu'?"},
+      {worker + " evaluate " + d + "/bad.yaml --weights " + d + "/none.pt --out " + d + "/e", 2, "did you mean"},
+      {worker + " scan " + d + "/bad.yaml --weights " + d + "/none.pt --out " + d + "/e", 2, "did you mean"},
+      {worker + " das " + d + "/bad.yaml --weights " + d + "/none.pt --out " + d + "/e", 2, "did you mean"},
+      {worker + " serve --server 127.0.0.1:1 --token-file " + d + "/missing.token", 2, "missing.token"},
+      {worker, 3, "subcommand"},
+      {worker + " trian " + config, 3, "subcommand"},
+      {worker + " check", 3, "CONFIG"},
+      {worker + " run " + config, 3, "--out"},
+      {worker + " run " + config + " --out " + d + "/r --stop-after-step soon", 3, "soon"},
+      {worker + " evaluate " + config + " --out " + d + "/e", 3, "--weights"},
+      {worker + " scan " + config + " --out " + d + "/e", 3, "--weights"},
+      {worker + " das " + config + " --out " + d + "/e", 3, "--weights"},
+      {worker + " serve", 3, "--token-file"},
+      {worker + " run " + config + " --out " + d + "/stopped" + small + " --stop-after-step 30", 8,
+       "stopped after step 30"},
+      {worker + " run " + config + " --out " + d + "/stopped" + small + " --resume " + d + "/stopped", 0,
+       "finished 60 steps"},
+      // graftd: 0 (--help; a clean stop is below), 1, 2, 3.
+      {graftd + " --help", 0, "Exit codes"},
+      {graftd + " --listen 127.0.0.1:0 --tokens-file " + d + "/tokens.yaml --data-dir " + d + "/a-file/data", 1,
+       "cannot create the data dir"},
+      {graftd + " --config " + d + "/graftd-bad.yaml", 2, "graftd-bad.yaml:2:1: unknown key 'lease_secs'"},
+      {graftd + " --listen 127.0.0.1:0 --data-dir " + d + "/data", 2, "no tokens file"},
+      {graftd + " --listen 0.0.0.0:0 --tokens-file " + d + "/tokens.yaml --data-dir " + d + "/data", 2,
+       "--allow-plaintext"},
+      {graftd + " --bogus", 3, "--bogus"},
+      {graftd + " --lease-seconds soon", 3, "soon"},
+      {graftd + " --durability fast", 3, "expected normal | full"},
+  };
+  for (const ExitCase& c : cases) {
+    auto r = RunCommand("cd " + d + " && " + c.command);
+    EXPECT_EQ(r.exit_code, c.code) << c.command << "\n" << r.output;
+    EXPECT_NE(r.output.find(c.message), std::string::npos) << c.command << "\n" << r.output;
+  }
+
+  // graftd's 0: a clean stop on SIGTERM, once it listens.
+  testing::ScopedProcess d0({graftd, "--listen", "127.0.0.1:0", "--tokens-file", d + "/tokens.yaml", "--data-dir",
+                             d + "/data", "--port-file", d + "/port"},
+                            d + "/graftd.log");
+  ASSERT_TRUE(d0.started());
+  // graftd renames the port file into place once it listens.
+  ASSERT_TRUE(WaitFor([&] { return std::ifstream(d + "/port").good(); }, 30000)) << ReadFile(d + "/graftd.log");
+  ASSERT_TRUE(d0.Signal(SIGTERM));
+  EXPECT_EQ(d0.Wait(30000), 0) << ReadFile(d + "/graftd.log");
 }
 
 // ---------------------------------------------------------------------------------------------
@@ -1128,7 +1234,100 @@ TEST(ClientRender, RewindDropsThePointsFromItsStep) {
   std::string line;
   while (std::getline(in, line) && line.rfind("1.00 |", 0) != 0) {
   }
-  EXPECT_EQ(line.back(), '#') << frame;
+  EXPECT_EQ(line.back(), 'T') << frame;  // task accuracy's mark
+}
+
+// The chart's marks (README "watch"): set N of training.interventions is drawn with its number,
+// 1 to 9, then a, b, c ... from the tenth; task accuracy is T; a shared cell is ':'. Twelve sets,
+// stored in an order that is not alphabetical, each at its own height: every set must get its own
+// mark, drawn on its own row, and the legend must say which mark is which set, in stored order.
+TEST(ClientRender, TwelveSetsGetTwelveDistinctMarksThatTheLegendNames) {
+  client::JobView view;
+  v1::JobEvent state;
+  state.mutable_state_change()->set_id("j-1");
+  state.mutable_state_change()->set_total_steps(100);
+  state.mutable_state_change()->set_state(v1::JOB_STATE_RUNNING);
+  view.Apply(state);
+  // Set i (1-based) is named "v" + letter (13 - i): m, l, ..., b, so sorting by name would
+  // reverse the numbering. Its IIA is 1 - i/12, which puts it on row i of the 13-row chart (row 0
+  // is y = 1.00, the task accuracy; row 12 is y = 0.00).
+  std::vector<std::string> names;
+  auto point = [&](int64_t step) {
+    nlohmann::ordered_json by_set = nlohmann::ordered_json::object();
+    for (int i = 1; i <= 12; ++i) {
+      const double v = 1.0 - i / 12.0;
+      by_set["v" + std::string(1, static_cast<char>('a' + 13 - i))] = {{"value", v}, {"lo", v}, {"hi", v}};
+    }
+    nlohmann::ordered_json m = {{"step", step}, {"acc_held_out", {{"value", 1.0}, {"lo", 1.0}, {"hi", 1.0}}},
+                                {"iia_by_set", by_set}};
+    v1::JobEvent e;
+    e.mutable_point()->set_step(step);
+    e.mutable_point()->set_attempt(1);
+    e.mutable_point()->set_metrics_json(m.dump());
+    return e;
+  };
+  for (int i = 1; i <= 12; ++i) names.push_back("v" + std::string(1, static_cast<char>('a' + 13 - i)));
+  for (int64_t step : {0, 50, 100}) view.Apply(point(step));
+  const std::string frame = client::RenderJobFrame(view, 80, 0);
+
+  // The legend: "  <mark> = <what>  <value>", task accuracy first, then the sets in stored order.
+  std::vector<char> marks;
+  std::vector<std::string> legend;
+  for (const auto& line : Lines(frame)) {
+    if (line.size() > 6 && line.compare(0, 2, "  ") == 0 && line[2] != ' ' && line.compare(3, 3, " = ") == 0) {
+      marks.push_back(line[2]);
+      legend.push_back(line.substr(6));
+    }
+  }
+  ASSERT_EQ(marks.size(), 13u) << frame;
+  EXPECT_EQ(marks[0], 'T') << frame;
+  EXPECT_EQ(legend[0].rfind("task accuracy (acc_held_out)", 0), 0u) << legend[0];
+  const std::string expected_marks = "123456789abc";
+  for (int i = 1; i <= 12; ++i) {
+    EXPECT_EQ(marks[i], expected_marks[i - 1]) << "set " << i << "\n" << frame;
+    EXPECT_EQ(legend[i].rfind("IIA, set " + names[i - 1] + " (iia_by_set)", 0), 0u) << "set " << i << ": " << legend[i];
+  }
+  EXPECT_EQ(std::set<char>(marks.begin(), marks.end()).size(), 13u) << frame;
+  EXPECT_EQ(frame.find(" = two or more curves in one cell"), std::string::npos) << frame;  // nothing shared
+
+  // The chart: row r (after "accuracy") is "LABEL|cells"; each curve is flat, so its row holds its
+  // mark in every column from x = 0 to the last step and nothing else.
+  std::vector<std::string> rows;
+  bool in_chart = false;
+  for (const auto& line : Lines(frame)) {
+    if (line == "accuracy") {
+      in_chart = true;
+      continue;
+    }
+    if (in_chart && line.size() > 6 && line[5] == '|') rows.push_back(line.substr(6));
+    if (in_chart && line.rfind("     +", 0) == 0) break;
+  }
+  ASSERT_EQ(rows.size(), 13u) << frame;
+  for (int r = 0; r < 13; ++r) {
+    const char mark = marks[r];
+    ASSERT_FALSE(rows[r].empty()) << "row " << r;
+    EXPECT_EQ(rows[r], std::string(rows[r].size(), mark)) << "row " << r << " should be all '" << mark << "'\n"
+                                                          << frame;
+    EXPECT_EQ(rows[r].size(), rows[0].size()) << "row " << r;
+  }
+
+  // Two curves through one cell: the shared mark, and the legend line that explains it.
+  v1::JobEvent meet;
+  meet.mutable_point()->set_step(100);
+  meet.mutable_point()->set_attempt(1);
+  meet.mutable_point()->set_metrics_json(
+      nlohmann::ordered_json{{"step", 100},
+                             {"acc_held_out", {{"value", 0.5}}},
+                             {"iia_by_set", {{"local", {{"value", 0.5}}}, {"careful", {{"value", 0.0}}}}}}
+          .dump());
+  client::JobView two;
+  two.Apply(state);
+  two.Apply(meet);
+  const std::string shared = client::RenderJobFrame(two, 80, 0);
+  EXPECT_NE(shared.find("0.50 |" + std::string(71, ' ') + ":"), std::string::npos) << shared;
+  EXPECT_NE(shared.find("  : = two or more curves in one cell"), std::string::npos) << shared;
+  EXPECT_NE(shared.find("  1 = IIA, set local (iia_by_set)"), std::string::npos) << shared;
+  EXPECT_NE(shared.find("  2 = IIA, set careful (iia_by_set)"), std::string::npos) << shared;
 }
 
 TEST(ClientRender, BarsSparklinesDurationsAndIds) {
@@ -1295,6 +1494,102 @@ TEST(ClientFetch, ADamagedDownloadIsRefusedAndNothingIsKept) {
   EXPECT_NE(r.err.find("weights.pt of j-1 arrived damaged"), std::string::npos) << r.err;
   EXPECT_FALSE(std::ifstream(fa.out_dir + "/weights.pt").good());
   EXPECT_FALSE(std::ifstream(fa.out_dir + "/weights.pt.part").good());
+}
+
+// ---------------------------------------------------------------------------------------------
+// The worker fleet: `graft workers`, Slurm ids recorded at registration, --idle-exit.
+
+// The fleet as `graft workers --json --all` prints it, by worker id.
+std::map<std::string, json> Fleet(client::Api& api) {
+  Ran r = Call([&](client::Io& io) {
+    client::WorkersArgs a;
+    a.all = true;
+    a.json = true;
+    return client::WorkersCommand(api, a, io);
+  });
+  std::map<std::string, json> out;
+  if (r.code != 0) return out;
+  for (const auto& w : json::parse(r.out)) out[w["id"].get<std::string>()] = w;
+  return out;
+}
+
+// The id of the one worker whose field `key` equals `value`, or "".
+std::string WorkerWith(const std::map<std::string, json>& fleet, const std::string& key, const std::string& value) {
+  for (const auto& [id, w] : fleet) {
+    if (w[key] == value) return id;
+  }
+  return "";
+}
+
+TEST(ClientWorkers, ListsTheFleetWithSlurmIdsStatesAndIdleExit) {
+  Cluster c;
+  auto api = ApiFor(c);
+  // A worker that runs "inside" a Slurm array task (the variables Slurm sets), and one that leaves
+  // after 1 s with nothing to lease.
+  const std::vector<std::string> worker = {BinaryDir() + "/bin/graft-worker", "serve", "--server", c.address(),
+                                           "--token-file", c.dir() + "/worker.token", "--threads", "1"};
+  std::vector<std::string> slurm_argv = {"/usr/bin/env", "SLURM_JOB_ID=4711", "SLURM_ARRAY_JOB_ID=4700",
+                                         "SLURM_ARRAY_TASK_ID=3"};
+  slurm_argv.insert(slurm_argv.end(), worker.begin(), worker.end());
+  slurm_argv.insert(slurm_argv.end(), {"--work-dir", c.dir() + "/wa"});
+  testing::ScopedProcess slurm_worker(slurm_argv, c.dir() + "/wa.log");
+  std::vector<std::string> idle_argv = worker;
+  idle_argv.insert(idle_argv.end(), {"--work-dir", c.dir() + "/wb", "--idle-exit", "1"});
+  std::vector<std::string> idle_env = {"/usr/bin/env", "-u", "SLURM_JOB_ID", "-u", "SLURM_ARRAY_JOB_ID", "-u",
+                                       "SLURM_ARRAY_TASK_ID"};
+  idle_env.insert(idle_env.end(), idle_argv.begin(), idle_argv.end());
+  testing::ScopedProcess idle_worker(idle_env, c.dir() + "/wb.log");
+
+  // The idle worker leaves by itself with exit code 0 and is shown gone, with its reason.
+  ASSERT_EQ(idle_worker.Wait(60000), 0) << ReadFile(c.dir() + "/wb.log");
+  EXPECT_NE(ReadFile(c.dir() + "/wb.log").find("nothing to lease for 1 s; leaving"), std::string::npos);
+  std::string a_id;
+  ASSERT_TRUE(WaitFor([&] { return !(a_id = WorkerWith(Fleet(*api), "slurm_job_id", "4711")).empty(); }, 30000))
+      << ReadFile(c.dir() + "/wa.log");
+  auto fleet = Fleet(*api);
+  ASSERT_EQ(fleet.size(), 2u);
+  const json& a = fleet[a_id];
+  EXPECT_EQ(a["slurm_array_job_id"], "4700");
+  EXPECT_EQ(a["slurm_array_task_id"], "3");
+  EXPECT_EQ(a["threads"], 1);
+  EXPECT_EQ(a["state"], "idle");
+  EXPECT_EQ(a["jobs_finished"], 0);
+  std::string b_id;
+  for (const auto& [id, w] : fleet) {
+    if (id != a_id) b_id = id;
+  }
+  EXPECT_EQ(fleet[b_id]["state"], "gone");
+  EXPECT_EQ(fleet[b_id]["gone_reason"], "left");
+  EXPECT_EQ(fleet[b_id]["slurm_job_id"], "");
+  // Without --all the gone worker is left out; the table names the Slurm task.
+  Ran table = Call([&](client::Io& io) { return client::WorkersCommand(*api, client::WorkersArgs{}, io); });
+  ASSERT_EQ(table.code, 0) << table.err;
+  EXPECT_NE(table.out.find("4700_3 (4711)"), std::string::npos) << table.out;
+  EXPECT_EQ(table.out.find(b_id), std::string::npos) << table.out;
+  EXPECT_NE(table.out.find("1 workers: 1 idle, 0 training, 0 pending"), std::string::npos) << table.out;
+
+  // While it trains, the worker shows the job and its step; a job it ended keeps its worker id.
+  const std::string long_job = c.Submit(kAlice, "parcel-routing", {"training.steps=1000000", "evaluation.every=10"});
+  ASSERT_TRUE(WaitFor([&] {
+    auto f = Fleet(*api);
+    return f[a_id]["state"] == "training" && f[a_id]["job_id"] == long_job && f[a_id]["step"].get<int64_t>() > 0;
+  }, 60000)) << Fleet(*api)[a_id].dump();
+  Ran cancel = Call([&](client::Io& io) {
+    client::CancelArgs ca;
+    ca.id = long_job;
+    return client::CancelCommand(*api, ca, io);
+  });
+  ASSERT_EQ(cancel.code, 0) << cancel.err;
+  ASSERT_TRUE(c.WaitState(long_job, v1::JOB_STATE_CANCELLED, 60000));
+  const std::string short_job = c.Submit(kAlice, "parcel-routing", {"training.steps=20", "evaluation.every=10"});
+  ASSERT_TRUE(c.WaitState(short_job, v1::JOB_STATE_SUCCEEDED, 120000)) << ReadFile(c.dir() + "/wa.log");
+  EXPECT_EQ(c.Get(short_job).worker_id(), a_id);
+  ASSERT_TRUE(WaitFor([&] { return Fleet(*api)[a_id]["jobs_finished"] == 2; }, 30000)) << Fleet(*api)[a_id].dump();
+  EXPECT_EQ(Fleet(*api)[a_id]["state"], "idle");
+  // Workers see nothing of the fleet: the Jobs service is for people.
+  auto as_worker = ApiFor(c, testing::kWorker);
+  v1::ListWorkersResponse resp;
+  EXPECT_EQ(as_worker->ListWorkers(true, &resp).error_code(), grpc::StatusCode::PERMISSION_DENIED);
 }
 
 }  // namespace

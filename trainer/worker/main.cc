@@ -20,6 +20,9 @@ extern "C" void OnStopSignal(int) { stop_requested.store(true); }
 int main(int argc, char** argv) {
   CLI::App app{"graft-worker: trains networks to implement an algorithm (IIT) and measures IIA"};
   app.require_subcommand(1);
+  app.footer("Exit codes (shared with graft and graftd; README \"Exit codes\"): 0 done; 1 run-time failure; "
+             "2 invalid config, weights or token file; 3 usage error; 8 run stopped early with a checkpoint "
+             "(continue with --resume).\n");
 
   std::string check_config;
   std::vector<std::string> check_sets;
@@ -64,11 +67,19 @@ int main(int argc, char** argv) {
   serve->add_option("--token-file", serve_args.token_file, "file holding this worker's token")->required();
   serve->add_option("--threads", serve_args.threads, "at most this many threads per job (default 1)");
   serve->add_option("--work-dir", serve_args.work_dir, "scratch directory for run directories");
+  serve->add_option("--ca-file", serve_args.ca_file, "TLS: the PEM CA that signed the coordinator's certificate");
+  serve->add_option("--cert", serve_args.cert_file, "mutual TLS: this worker's PEM certificate (with --key)");
+  serve->add_option("--key", serve_args.key_file, "mutual TLS: the certificate's unencrypted PEM key");
+  serve->add_option("--tls-server-name", serve_args.tls_server_name,
+                    "TLS: the name the coordinator's certificate carries, when it is not the --server host");
+  serve->add_option("--idle-exit", serve_args.idle_exit_s,
+                    "leave (exit 0) after this many seconds with nothing to lease (default 0: never)")
+      ->check(CLI::NonNegativeNumber);
 
   try {
     app.parse(argc, argv);
   } catch (const CLI::ParseError& e) {
-    return app.exit(e) == 0 ? 0 : graft::worker::kExitInvalidConfig;
+    return app.exit(e) == 0 ? graft::kExitOk : graft::kExitUsage;  // --help, or a usage error
   }
   if (check->parsed()) {
     return graft::worker::CheckCommand(check_config, check_sets, std::cout, std::cerr, check_max_sweep_jobs);

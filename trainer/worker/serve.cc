@@ -2,7 +2,9 @@
 
 #include <unistd.h>
 
+#include <algorithm>
 #include <chrono>
+#include <cstdlib>
 #include <condition_variable>
 #include <deque>
 #include <filesystem>
@@ -16,6 +18,7 @@
 #include "absl/strings/str_cat.h"
 #include "graft/v1/graft.grpc.pb.h"
 #include "proto/sha256.h"
+#include "proto/tls.h"
 #include "configs/reader/spec.h"
 #include "trainer/train/analysis.h"
 #include "trainer/train/trainer.h"
@@ -35,8 +38,10 @@ bool Retryable(const grpc::Status& s) {
 // The connection to the coordinator, with the token attached to every call.
 class Link {
  public:
-  Link(const std::string& server, std::string token, std::ostream& err)
-      : stub_(v1::Workers::NewStub(grpc::CreateChannel(server, grpc::InsecureChannelCredentials()))),
+  Link(const std::string& server, tls::ClientCredentials credentials, std::string token, std::ostream& err)
+      : server_(server),
+        credentials_(std::move(credentials)),
+        stub_(v1::Workers::NewStub(tls::CreateChannel(server, credentials_))),
         token_(std::move(token)),
         err_(err) {}
 
@@ -55,11 +60,24 @@ class Link {
     int64_t backoff = 200;
     for (;;) {
       grpc::Status s = call();
+      if (s.ok()) connected_ = true;
       if (!Retryable(s)) return s;
+      std::string why = s.error_message();
+      if (s.error_code() == grpc::StatusCode::UNAVAILABLE) {
+        // gRPC says only that the handshake failed; a handshake of our own names the cause. Before
+        // the first successful call a misconfiguration is final: retrying cannot mend it.
+        const tls::Diagnosis d = tls::Diagnose(server_, credentials_);
+        if (d.misconfigured && !connected_) {
+          return grpc::Status(grpc::StatusCode::FAILED_PRECONDITION,
+                              absl::StrCat("cannot connect to the coordinator at ", server_, ": ", d.message,
+                                           " (a TLS setting, not an outage: not retrying)"));
+        }
+        if (!d.message.empty()) why = d.message;
+      }
       const int64_t elapsed =
           std::chrono::duration_cast<std::chrono::milliseconds>(Clock::now() - start).count();
       if ((stop != nullptr && stop->load()) || elapsed > give_up_ms) return s;
-      err_ << "graft-worker: " << what << ": coordinator unavailable (" << s.error_message() << "); retrying in "
+      err_ << "graft-worker: " << what << ": coordinator unavailable (" << why << "); retrying in "
            << backoff << " ms\n";
       std::this_thread::sleep_for(std::chrono::milliseconds(backoff));
       backoff = std::min<int64_t>(backoff * 2, 5000);
@@ -69,6 +87,9 @@ class Link {
   v1::Workers::Stub& stub() { return *stub_; }
 
  private:
+  const std::string server_;
+  const tls::ClientCredentials credentials_;
+  bool connected_ = false;  // a call through Retry has succeeded
   std::unique_ptr<v1::Workers::Stub> stub_;
   std::string token_;
   std::ostream& err_;
@@ -401,7 +422,12 @@ int ServeCommand(const ServeArgs& args_in, const std::atomic<bool>* stop, std::o
   if (args.work_dir.empty()) {
     args.work_dir = (fs::temp_directory_path() / absl::StrCat("graft-worker-", getpid())).string();
   }
-  Link link(args.server, token, err);
+  auto credentials = tls::LoadClientCredentials({args.ca_file, args.cert_file, args.key_file, args.tls_server_name});
+  if (!credentials.ok()) {
+    err << "graft-worker: " << credentials.status().message() << "\n";
+    return kExitInvalidConfig;
+  }
+  Link link(args.server, std::move(*credentials), token, err);
   char host[256] = {0};
   gethostname(host, sizeof(host) - 1);
 
@@ -412,6 +438,13 @@ int ServeCommand(const ServeArgs& args_in, const std::atomic<bool>* stop, std::o
     req.set_cores(static_cast<int32_t>(std::thread::hardware_concurrency()));
     req.set_threads(args.threads);
     req.set_version(GRAFT_WORKER_VERSION);
+    auto env = [](const char* name) -> std::string {
+      const char* v = std::getenv(name);
+      return v == nullptr ? "" : v;
+    };
+    req.set_slurm_job_id(env("SLURM_JOB_ID"));
+    req.set_slurm_array_job_id(env("SLURM_ARRAY_JOB_ID"));
+    req.set_slurm_array_task_id(env("SLURM_ARRAY_TASK_ID"));
     v1::RegisterWorkerResponse resp;
     grpc::Status s = link.Retry(
         "register", [&]() {
@@ -425,15 +458,40 @@ int ServeCommand(const ServeArgs& args_in, const std::atomic<bool>* stop, std::o
     }
     worker_id = resp.worker_id();
     err << "graft-worker: registered as " << worker_id << " with " << args.server << " (lease " << resp.lease_seconds()
-        << " s)\n";
+        << " s" << (req.slurm_job_id().empty() ? "" : ", Slurm job " + req.slurm_job_id()) << ")\n";
     return true;
   };
   if (!register_worker()) return stop->load() ? kExitOk : kExitFailure;
+  // Tells the coordinator this worker is leaving (best effort: a few seconds at most).
+  auto deregister = [&](const std::string& reason) {
+    v1::DeregisterWorkerRequest req;
+    req.set_worker_id(worker_id);
+    req.set_reason(reason);
+    v1::DeregisterWorkerResponse resp;
+    auto ctx = link.Context(5000);
+    grpc::Status s = link.stub().DeregisterWorker(ctx.get(), req, &resp);
+    if (!s.ok()) err << "graft-worker: deregister: " << s.error_message() << "\n";
+  };
 
+  auto idle_since = Clock::now();
   while (!stop->load()) {
+    int64_t wait_ms = 5000;
+    if (args.idle_exit_s > 0) {
+      const int64_t idle_ms =
+          std::chrono::duration_cast<std::chrono::milliseconds>(Clock::now() - idle_since).count();
+      const int64_t left_ms = args.idle_exit_s * 1000 - idle_ms;
+      if (left_ms <= 0) {
+        const std::string reason = absl::StrCat("idle for ", args.idle_exit_s, " s (--idle-exit)");
+        err << "graft-worker: nothing to lease for " << args.idle_exit_s << " s; leaving\n";
+        deregister(reason);
+        err << "graft-worker: stopped\n";
+        return kExitOk;
+      }
+      wait_ms = std::clamp<int64_t>(left_ms, 1, 5000);
+    }
     v1::LeaseJobRequest req;
     req.set_worker_id(worker_id);
-    req.set_wait_ms(5000);
+    req.set_wait_ms(wait_ms);
     v1::LeaseJobResponse lease;
     grpc::Status s = link.Retry(
         "lease", [&]() {
@@ -453,7 +511,9 @@ int ServeCommand(const ServeArgs& args_in, const std::atomic<bool>* stop, std::o
     if (!lease.has_job()) continue;
     JobRun run(link, args, worker_id, lease, stop, err);
     run.Execute();
+    idle_since = Clock::now();
   }
+  deregister("stopped by a signal");
   err << "graft-worker: stopped\n";
   return kExitOk;
 }
