@@ -65,15 +65,14 @@ void UpgradeNames(json* j) {
 // The curves a job view draws: task accuracy first, then one per intervention set.
 struct Series {
   std::string label;
-  char glyph;
+  char glyph;                                       // 0: listed in the legend, not drawn
   std::vector<std::pair<int64_t, double>> points;  // ascending step
   std::string latest;                               // value text for the legend
 };
 
 std::vector<Series> CurvesOf(const JobView& view) {
-  static const char kGlyphs[] = "o+x%@&=~";
   std::vector<Series> out;
-  Series task{"task accuracy (acc_held_out)", '#', {}, "-"};
+  Series task{"task accuracy (acc_held_out)", kTaskGlyph, {}, "-"};
   std::map<std::string, Series> sets;
   std::vector<std::string> set_order;
   for (const auto& [step, p] : view.points()) {
@@ -85,7 +84,12 @@ std::vector<Series> CurvesOf(const JobView& view) {
       for (const auto& [name, acc] : p.metrics["iia_by_set"].items()) {
         if (!sets.count(name)) {
           set_order.push_back(name);
-          sets[name] = Series{"IIA, set " + name + " (iia_by_set)", kGlyphs[(set_order.size() - 1) % 8], {}, "-"};
+          // Numbered in the order stored, which is training.interventions' order.
+          const int number = static_cast<int>(set_order.size());
+          const char glyph = SetGlyph(number);
+          sets[name] = Series{"IIA, set " + name + " (iia_by_set" +
+                                  (glyph == 0 ? ", set " + std::to_string(number) + ": not drawn)" : ")"),
+                              glyph, {}, "-"};
         }
         if (AccuracyValue(p.metrics["iia_by_set"], name)) {
           sets[name].points.emplace_back(step, acc["value"].get<double>());
@@ -110,6 +114,12 @@ std::string JobHeader(const v1::Job& job, int64_t now_ms) {
 }
 
 }  // namespace
+
+char SetGlyph(int number) {
+  if (number >= 1 && number <= 9) return static_cast<char>('0' + number);
+  if (number >= 10 && number <= 35) return static_cast<char>('a' + (number - 10));
+  return 0;
+}
 
 std::string StateName(v1::JobState state) {
   switch (state) {
@@ -312,13 +322,14 @@ std::string RenderJobFrame(const JobView& view, int width, int64_t now_ms) {
   auto mark = [&](int row, int col, char glyph) {
     char& cell = grid[row][col];
     if (cell != ' ' && cell != glyph) {
-      cell = '*';  // two or more curves pass through this cell
+      cell = kSharedGlyph;  // two or more curves pass through this cell
       shared = true;
     } else {
       cell = glyph;
     }
   };
   for (const Series& s : series) {
+    if (s.glyph == 0) continue;
     const auto& pts = s.points;
     for (size_t i = 0; i < pts.size(); ++i) {
       const int c0 = col_of(pts[i].first);
@@ -356,8 +367,10 @@ std::string RenderJobFrame(const JobView& view, int width, int64_t now_ms) {
   o << std::string(6 + plot_width / 2 - 3, ' ') << "steps\n";
   int label_width = 0;
   for (const auto& s : series) label_width = std::max(label_width, Width(s.label));
-  for (const auto& s : series) o << "  " << s.glyph << " " << Pad(s.label, label_width) << "  " << s.latest << "\n";
-  if (shared) o << "  * several curves in one cell\n";
+  for (const auto& s : series) {
+    o << "  " << (s.glyph == 0 ? '-' : s.glyph) << " = " << Pad(s.label, label_width) << "  " << s.latest << "\n";
+  }
+  if (shared) o << "  " << kSharedGlyph << " = two or more curves in one cell\n";
   if (!view.points().empty()) {
     const auto& last = view.points().rbegin()->second.metrics;
     o << "  at step " << view.points().rbegin()->first << ": iia_held_out " << AccuracyText(last, "iia_held_out")

@@ -78,9 +78,18 @@ class JobView {
   int points_received_ = 0;
 };
 
+// The marks of the job chart. Task accuracy is kTaskGlyph; intervention set number N (1-based, in
+// the order of `training.interventions`, which is the stored order of `iia_by_set`) is
+// SetGlyph(N): '1' to '9', then 'a' to 'z' for sets 10 to 35, and 0 (listed in the legend, not
+// drawn) beyond; a cell where two or more curves meet is kSharedGlyph.
+inline constexpr char kTaskGlyph = 'T';
+inline constexpr char kSharedGlyph = ':';
+char SetGlyph(int number);
+
 // The live curves of one job: task accuracy (acc_held_out) and IIA of each intervention set
 // (iia_by_set) against steps, y from 0 to 1, x from 0 to the job's total steps, with a legend
-// holding the latest values. `width` is the terminal's width in columns.
+// that says which mark is which curve ("1 = IIA, set local") and holds the latest values.
+// `width` is the terminal's width in columns.
 std::string RenderJobFrame(const JobView& view, int width, int64_t now_ms);
 // The plain line for an event when output is not a terminal ("" for nothing to say).
 std::string RenderJobLine(const JobView& view, const v1::JobEvent& event);

@@ -3,6 +3,7 @@
 #include <iostream>
 
 #include "CLI/CLI.hpp"
+#include "proto/exit_codes.h"
 #include "server/graftd.h"
 
 namespace {
@@ -12,6 +13,8 @@ extern "C" void OnStopSignal(int) { stop_requested.store(true); }
 
 int main(int argc, char** argv) {
   CLI::App app{"graftd: the graft coordinator (jobs, leases, metrics, artifacts over gRPC)"};
+  app.footer("Exit codes (shared with graft and graft-worker; README \"Exit codes\"): 0 stopped cleanly by "
+             "SIGINT/SIGTERM; 1 failure (data dir, store, cannot listen); 2 invalid settings; 3 usage error.\n");
   graft::server::GraftdConfig config;
   std::string config_file, listen, data_dir, tokens, durability;
   int64_t lease_seconds = 0, max_config_bytes = 0, max_sweep_jobs = 0;
@@ -28,13 +31,17 @@ int main(int argc, char** argv) {
   app.add_option("--durability", durability, "normal (survives a killed process) | full (also power loss)");
   app.add_flag("--allow-plaintext", allow_plaintext, "allow a non-loopback listen address without TLS");
   app.add_option("--port-file", config.port_file, "write the bound port to this file once listening");
-  CLI11_PARSE(app, argc, argv);
+  try {
+    app.parse(argc, argv);
+  } catch (const CLI::ParseError& e) {
+    return app.exit(e) == 0 ? graft::kExitOk : graft::kExitUsage;  // --help, or a usage error
+  }
 
   if (!config_file.empty()) {
     absl::Status st = graft::server::LoadGraftdConfig(config_file, &config);
     if (!st.ok()) {
       std::cerr << st.message() << "\n";
-      return 2;
+      return graft::kExitInvalidConfig;
     }
   }
   if (!listen.empty()) config.listen = listen;
@@ -47,8 +54,8 @@ int main(int argc, char** argv) {
   if (allow_plaintext) config.allow_plaintext = true;
   if (!durability.empty()) {
     if (durability != "normal" && durability != "full") {
-      std::cerr << "--durability: expected normal | full, got '" << durability << "'\n";
-      return 2;
+      std::cerr << "graftd: --durability: expected normal | full, got '" << durability << "'\n";
+      return graft::kExitUsage;
     }
     config.durability =
         durability == "full" ? graft::server::Durability::kFull : graft::server::Durability::kNormal;

@@ -1,6 +1,7 @@
 // The subcommands of graft-worker, as functions that write to the streams they are given and
-// return the process exit code (0 success, 2 invalid config, 1 run-time failure), so tests can
-// call them in-process. Thread-safety: each call is independent.
+// return the process exit code, one of the table graft, graft-worker and graftd share
+// (proto/exit_codes.h, README "Exit codes"), so tests can call them in-process.
+// Thread-safety: each call is independent.
 #ifndef GRAFT_TRAINER_WORKER_COMMANDS_H_
 #define GRAFT_TRAINER_WORKER_COMMANDS_H_
 
@@ -10,13 +11,17 @@
 #include <string>
 #include <vector>
 
+#include "proto/exit_codes.h"
+
 namespace graft::worker {
 
-inline constexpr int kExitOk = 0;
-inline constexpr int kExitFailure = 1;
-inline constexpr int kExitInvalidConfig = 2;
-// Stopped by a signal or --stop-after-step with a checkpoint written: resume with --resume.
-inline constexpr int kExitInterrupted = 3;
+// The codes the subcommands return: 0 done, 1 a run-time failure, 2 an invalid config or weights
+// that do not fit it, 8 (run) stopped early with a checkpoint written: resume with --resume.
+using ::graft::kExitFailure;
+using ::graft::kExitInterrupted;
+using ::graft::kExitInvalidConfig;
+using ::graft::kExitOk;
+using ::graft::kExitUsage;
 
 // `graft-worker check CONFIG [--set k=v]... [--max-sweep-jobs N]`: validates and prints the
 // summary to `out` (for a sweep: its job count and every job's name, as `graft check` prints),
