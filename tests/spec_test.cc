@@ -387,6 +387,21 @@ TEST(CheckCommand, GraftAndGraftWorkerAcceptASweepAndSayTheSame) {
   EXPECT_EQ(names.size(), 16u) << r.output;
 }
 
+// Without a `name`, a sweep's jobs are named after the file, as a lone job is. Catches the
+// fixed "sweep/..." the names had before.
+TEST(CheckCommand, JobsOfANamelessSweepAreNamedAfterItsFile) {
+  const std::string text = Replace(std::string(kBase) + "sweep:\n  seeds: [1, 2]\n", "name: parcel-routing\n", "");
+  auto lone = LoadJobFromText(Replace(text, "sweep:\n  seeds: [1, 2]\n", ""), "studies/route-study.yaml", {});
+  ASSERT_TRUE(lone.ok()) << lone.status();
+  EXPECT_EQ(lone->spec.name, "route-study");
+  auto plan = PlanFromText(text, "studies/route-study.yaml", {}, kDefaultMaxSweepJobs);
+  ASSERT_TRUE(plan.ok()) << plan.status();
+  ASSERT_EQ(plan->jobs.size(), 2u);
+  EXPECT_EQ(plan->jobs[0].name, "route-study/seed=1");
+  EXPECT_EQ(plan->jobs[1].name, "route-study/seed=2");
+  EXPECT_EQ(plan->jobs[1].job.spec.name, "route-study/seed=2");
+}
+
 // `graft-worker run` trains one job, so a sweep is refused before anything is written, and the
 // message's `--set` values make exactly the sweep's first job (the sampled learning rate in full,
 // not as the job name rounds it). Catches a worker that trains the base config of a sweep, and

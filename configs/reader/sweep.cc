@@ -3,6 +3,7 @@
 #include <cmath>
 #include <cstdio>
 #include <cstdlib>
+#include <filesystem>
 #include <map>
 #include <set>
 #include <sstream>
@@ -337,10 +338,12 @@ absl::StatusOr<SweepPlan> ExpandConfig(const ConfigNode& root, int64_t max_jobs)
       if (!same) clashing.insert(last);
     }
   }
+  // As for one job: the config's `name`, else the file's name without its extension.
   const std::string base_name = [&] {
     const ConfigNode* n = base.Find("name");
     if (n != nullptr && n->IsScalar() && !n->scalar.empty()) return n->scalar;
-    return std::string("sweep");
+    const std::string stem = std::filesystem::path(root.loc.source).stem().string();
+    return stem.empty() ? std::string("sweep") : stem;
   }();
   std::vector<size_t> index(axes->size(), 0);
   const size_t num_seeds = seeds.empty() ? 1 : seeds.size();
