@@ -6,6 +6,7 @@
 
 #include "absl/status/status.h"
 #include "absl/strings/str_cat.h"
+#include "absl/strings/str_join.h"
 #include "configs/reader/config_tree.h"
 #include "configs/reader/suggest.h"
 
@@ -34,6 +35,7 @@ absl::StatusOr<std::string> ReadTokenFile(const std::string& path, const std::st
 struct FileSettings {
   std::string server, server_at;
   std::string token, token_at;
+  std::string ca_file, cert_file, key_file, tls_server_name;
 };
 
 absl::StatusOr<FileSettings> ReadConfigFile(const std::string& path, bool must_exist) {
@@ -50,7 +52,13 @@ absl::StatusOr<FileSettings> ReadConfigFile(const std::string& path, bool must_e
     return absl::InvalidArgumentError(
         absl::StrCat(tree->loc.ToString(), ": expected a map with server, token or token_file, got ", tree->Describe()));
   }
-  const std::vector<std::string> keys = {"server", "token", "token_file"};
+  const std::vector<std::string> keys = {"server",    "token",    "token_file",     "ca_file",
+                                         "cert_file", "key_file", "tls_server_name"};
+  // A relative path is relative to the config file.
+  auto beside = [&](const std::string& p) {
+    fs::path f(p);
+    return (f.is_relative() ? fs::path(path).parent_path() / f : f).string();
+  };
   const config::ConfigNode* token_node = nullptr;
   const config::ConfigNode* token_file_node = nullptr;
   for (const auto& [k, v] : tree->entries) {
@@ -58,7 +66,7 @@ absl::StatusOr<FileSettings> ReadConfigFile(const std::string& path, bool must_e
       const std::string near = config::Nearest(k.scalar, keys);
       return absl::InvalidArgumentError(absl::StrCat(k.loc.ToString(), ": unknown key '", k.scalar,
                                                      "' in the client config",
-                                                     near.empty() ? "; valid keys: server, token, token_file"
+                                                     near.empty() ? absl::StrCat("; valid keys: ", absl::StrJoin(keys, ", "))
                                                                   : absl::StrCat("; did you mean '", near, "'?")));
     }
     if (!v.IsScalar() || v.scalar.empty()) {
@@ -68,6 +76,14 @@ absl::StatusOr<FileSettings> ReadConfigFile(const std::string& path, bool must_e
     if (k.scalar == "server") {
       out.server = v.scalar;
       out.server_at = v.loc.ToString();
+    } else if (k.scalar == "ca_file") {
+      out.ca_file = beside(v.scalar);
+    } else if (k.scalar == "cert_file") {
+      out.cert_file = beside(v.scalar);
+    } else if (k.scalar == "key_file") {
+      out.key_file = beside(v.scalar);
+    } else if (k.scalar == "tls_server_name") {
+      out.tls_server_name = v.scalar;
     } else if (k.scalar == "token") {
       token_node = &v;
     } else {
@@ -130,7 +146,14 @@ absl::StatusOr<ClientSettings> ResolveSettings(const SettingsSources& sources) {
     s.token = env("GRAFT_TOKEN");
     s.token_from = "GRAFT_TOKEN";
   }
-  if (s.server.empty() || s.token.empty()) {
+  // TLS files: each from its flag, else its variable, else the config file (below).
+  auto first = [&](const std::string& flag, const char* variable) { return !flag.empty() ? flag : env(variable); };
+  s.ca_file = first(sources.flag_ca_file, "GRAFT_CA_FILE");
+  s.cert_file = first(sources.flag_cert_file, "GRAFT_CERT_FILE");
+  s.key_file = first(sources.flag_key_file, "GRAFT_KEY_FILE");
+  s.tls_server_name = first(sources.flag_tls_server_name, "GRAFT_TLS_SERVER_NAME");
+  if (s.server.empty() || s.token.empty() || s.ca_file.empty() || s.cert_file.empty() || s.key_file.empty() ||
+      s.tls_server_name.empty()) {
     const std::string path = ConfigFilePath(sources.getenv ? sources.getenv : [](const char*) -> const char* {
       return nullptr;
     });
@@ -145,6 +168,10 @@ absl::StatusOr<ClientSettings> ResolveSettings(const SettingsSources& sources) {
         s.token = file->token;
         s.token_from = file->token_at;
       }
+      if (s.ca_file.empty()) s.ca_file = file->ca_file;
+      if (s.cert_file.empty()) s.cert_file = file->cert_file;
+      if (s.key_file.empty()) s.key_file = file->key_file;
+      if (s.tls_server_name.empty()) s.tls_server_name = file->tls_server_name;
     }
   }
   if (s.server.empty()) {

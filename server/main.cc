@@ -31,6 +31,10 @@ int main(int argc, char** argv) {
   app.add_option("--durability", durability, "normal (survives a killed process) | full (also power loss)");
   app.add_flag("--allow-plaintext", allow_plaintext, "allow a non-loopback listen address without TLS");
   app.add_option("--port-file", config.port_file, "write the bound port to this file once listening");
+  std::string tls_cert, tls_key, client_ca;
+  app.add_option("--tls-cert", tls_cert, "serve TLS with this PEM certificate (with --tls-key)");
+  app.add_option("--tls-key", tls_key, "the certificate's unencrypted PEM private key");
+  app.add_option("--client-ca", client_ca, "mutual TLS: require client certificates signed by this PEM CA");
   try {
     app.parse(argc, argv);
   } catch (const CLI::ParseError& e) {
@@ -52,6 +56,9 @@ int main(int argc, char** argv) {
   if (max_config_bytes > 0) config.max_config_bytes = max_config_bytes;
   if (max_sweep_jobs > 0) config.max_sweep_jobs = max_sweep_jobs;
   if (allow_plaintext) config.allow_plaintext = true;
+  if (!tls_cert.empty()) config.tls_cert = tls_cert;
+  if (!tls_key.empty()) config.tls_key = tls_key;
+  if (!client_ca.empty()) config.client_ca = client_ca;
   if (!durability.empty()) {
     if (durability != "normal" && durability != "full") {
       std::cerr << "graftd: --durability: expected normal | full, got '" << durability << "'\n";
