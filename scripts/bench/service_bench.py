@@ -4,14 +4,21 @@ and range of RUNS runs, with the command lines printed:
 
   overhead   200 jobs of 10 steps on 2 workers; per-job overhead =
              (makespan - sum of in-worker training seconds / 2) / 200        target < 20 ms
+             (plaintext and TLS, alternating in each run)
   sweep      8 demo-sized jobs on 2 workers, against two parallel chains of
              `graft-worker run` on the same jobs; efficiency = chains / service  target >= 0.95
   ingest     16 concurrent reporting clients (fake workers over the Workers API), batches of
              50 points, durability normal; points stored per second            target >= 20000
+             (plaintext and TLS, alternating in each run)
   rss        graftd's resident memory (VmHWM) with 10,000 queued jobs          target < 150 MB
 
 Usage: scripts/bench/service_bench.py [--runs 3] [--only overhead,sweep,ingest,rss]
-Uses Debian's python3-grpcio with stubs generated at start by python3-grpc-tools.
+Uses Debian's python3-grpcio with stubs generated at start by python3-grpc-tools. TLS runs use
+certificates made by scripts/make-certs.sh (the openssl command) in the run's directory: graftd
+with --tls-cert/--tls-key, workers with --ca-file, the benchmark's own clients over
+grpc.ssl_channel_credentials with the same CA. For overhead and ingest the two transports are
+measured in the same run, in alternating order, and the TLS/plaintext ratio of each pair is
+reported beside both medians.
 """
 import argparse
 import concurrent.futures
@@ -42,9 +49,13 @@ def stubs(tmp):
 
 
 class Cluster:
-    def __init__(self, pb, pb_grpc, workdir, workers=0, lease_seconds=30):
+    def __init__(self, pb, pb_grpc, workdir, workers=0, lease_seconds=30, tls=False):
         self.pb, self.dir = pb, workdir
         os.makedirs(workdir, exist_ok=True)
+        certs = os.path.join(workdir, "certs")
+        if tls:
+            subprocess.run([os.path.join(ROOT, "scripts", "make-certs.sh"), certs], check=True,
+                           stdout=subprocess.DEVNULL)
         with open(os.path.join(workdir, "tokens.yaml"), "w") as f:
             for tok, name, role in ((USER, "bench", "user"), (WORKER, "node", "worker")):
                 f.write("- {name: %s, role: %s, sha256: %s}\n" % (name, role, hashlib.sha256(tok.encode()).hexdigest()))
@@ -54,13 +65,20 @@ class Cluster:
         self.graftd_cmd = [os.path.join(BIN, "graftd"), "--listen", "127.0.0.1:0", "--port-file", port_file,
                            "--data-dir", os.path.join(workdir, "data"), "--tokens-file", os.path.join(workdir, "tokens.yaml"),
                            "--lease-seconds", str(lease_seconds), "--max-sweep-jobs", "10000"]
+        if tls:
+            self.graftd_cmd += ["--tls-cert", os.path.join(certs, "server.pem"), "--tls-key",
+                                os.path.join(certs, "server.key")]
         self.graftd = subprocess.Popen(self.graftd_cmd, stdout=subprocess.DEVNULL, stderr=open(os.path.join(workdir, "graftd.log"), "w"))
         for _ in range(200):
             if os.path.exists(port_file) and open(port_file).read().strip():
                 break
             time.sleep(0.05)
         self.address = "127.0.0.1:" + open(port_file).read().strip()
-        self.channel = grpc.insecure_channel(self.address)
+        if tls:
+            with open(os.path.join(certs, "ca.pem"), "rb") as f:
+                self.channel = grpc.secure_channel(self.address, grpc.ssl_channel_credentials(root_certificates=f.read()))
+        else:
+            self.channel = grpc.insecure_channel(self.address)
         self.jobs = pb_grpc.JobsStub(self.channel)
         self.workers_api = pb_grpc.WorkersStub(self.channel)
         self.md = (("authorization", "Bearer " + USER),)
@@ -70,6 +88,8 @@ class Cluster:
         for n in range(workers):
             self.worker_cmd = [os.path.join(BIN, "graft-worker"), "serve", "--server", self.address, "--token-file",
                                os.path.join(workdir, "worker.token"), "--work-dir", os.path.join(workdir, "w%d" % n)]
+            if tls:
+                self.worker_cmd += ["--ca-file", os.path.join(certs, "ca.pem")]
             self.workers.append(subprocess.Popen(self.worker_cmd, env=env, stdout=subprocess.DEVNULL,
                                                  stderr=open(os.path.join(workdir, "w%d.log" % n), "w")))
 
@@ -119,8 +139,8 @@ def config_text():
         return f.read()
 
 
-def bench_overhead(pb, pb_grpc, tmp, run):
-    c = Cluster(pb, pb_grpc, os.path.join(tmp, "overhead%d" % run), workers=2)
+def bench_overhead(pb, pb_grpc, tmp, run, tls=False):
+    c = Cluster(pb, pb_grpc, os.path.join(tmp, "overhead%d%s" % (run, "-tls" if tls else "")), workers=2, tls=tls)
     try:
         text = config_text() + "sweep:\n  seeds: [%s]\n" % ", ".join(str(i) for i in range(1, 201))
         t0 = time.time()
@@ -133,10 +153,10 @@ def bench_overhead(pb, pb_grpc, tmp, run):
         train = sum(json.loads(j.result_json)["wall_s"] for j in jobs)
         makespan = end - start
         overhead = (makespan - train / 2) / len(jobs)
-        if run == 0:
+        if run < 2:
             print("  $", " ".join(c.graftd_cmd), "\n  $", " ".join(c.worker_cmd), "(x2)")
-        print("  run %d: %d jobs, makespan %.2f s (client saw %.2f s), training %.2f s in all, overhead %.1f ms/job"
-              % (run + 1, len(jobs), makespan, t1 - t0, train, overhead * 1000))
+        print("  run %d %-9s: %d jobs, makespan %.2f s (client saw %.2f s), training %.2f s in all, overhead %.1f ms/job"
+              % (run + 1, "tls" if tls else "plaintext", len(jobs), makespan, t1 - t0, train, overhead * 1000))
         return overhead * 1000
     finally:
         c.stop()
@@ -175,8 +195,9 @@ def bench_sweep(pb, pb_grpc, tmp, run):
     return eff
 
 
-def bench_ingest(pb, pb_grpc, tmp, run):
-    c = Cluster(pb, pb_grpc, os.path.join(tmp, "ingest%d" % run), workers=0, lease_seconds=120)
+def bench_ingest(pb, pb_grpc, tmp, run, tls=False):
+    c = Cluster(pb, pb_grpc, os.path.join(tmp, "ingest%d%s" % (run, "-tls" if tls else "")), workers=0,
+                lease_seconds=120, tls=tls)
     try:
         n_clients, batches, batch = 16, 60, 50
         text = config_text() + "sweep:\n  seeds: [%s]\n" % ", ".join(str(i) for i in range(1, n_clients + 1))
@@ -208,8 +229,8 @@ def bench_ingest(pb, pb_grpc, tmp, run):
                      for _, l in leases)
         assert stored == total, (stored, total)
         rate = total / dt
-        print("  run %d: %d clients x %d batches x %d points = %d points in %.2f s: %.0f points/s; all %d stored"
-              % (run + 1, n_clients, batches, batch, total, dt, rate, stored))
+        print("  run %d %-9s: %d clients x %d batches x %d points = %d points in %.2f s: %.0f points/s; all %d stored"
+              % (run + 1, "tls" if tls else "plaintext", n_clients, batches, batch, total, dt, rate, stored))
         return rate
     finally:
         c.stop()
@@ -232,7 +253,7 @@ def bench_rss(pb, pb_grpc, tmp, run):
 
 
 def main():
-    ap = argparse.ArgumentParser()
+    ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     ap.add_argument("--runs", type=int, default=3)
     ap.add_argument("--only", default="overhead,sweep,ingest,rss")
     a = ap.parse_args()
@@ -241,12 +262,26 @@ def main():
         pb, pb_grpc = stubs(tmp)
         benches = {"overhead": (bench_overhead, "ms/job", "< 20"), "sweep": (bench_sweep, "efficiency", ">= 0.95"),
                    "ingest": (bench_ingest, "points/s", ">= 20000"), "rss": (bench_rss, "MB", "< 150")}
+        both = {"overhead", "ingest"}  # measured over plaintext and TLS
         for name in a.only.split(","):
             fn, unit, target = benches[name]
             print("== %s (target %s %s)" % (name, target, unit))
-            values = [fn(pb, pb_grpc, tmp, r) for r in range(a.runs)]
-            print("   %s: median %.3f %s, range %.3f-%.3f over %d runs" % (name, statistics.median(values), unit,
-                                                                      min(values), max(values), a.runs))
+            if name not in both:
+                values = [fn(pb, pb_grpc, tmp, r) for r in range(a.runs)]
+                print("   %s: median %.3f %s, range %.3f-%.3f over %d runs" % (name, statistics.median(values), unit,
+                                                                          min(values), max(values), a.runs))
+                continue
+            values = {False: [], True: []}
+            for r in range(a.runs):
+                for tls in ((False, True) if r % 2 == 0 else (True, False)):  # alternate which goes first
+                    values[tls].append(fn(pb, pb_grpc, tmp, r, tls=tls))
+            for tls in (False, True):
+                v = values[tls]
+                print("   %s %s: median %.3f %s, range %.3f-%.3f over %d runs" % (
+                    name, "tls" if tls else "plaintext", statistics.median(v), unit, min(v), max(v), a.runs))
+            ratios = [t / p for t, p in zip(values[True], values[False])]
+            print("   %s tls / plaintext per run: median %.3f, range %.3f-%.3f" % (
+                name, statistics.median(ratios), min(ratios), max(ratios)))
     finally:
         shutil.rmtree(tmp, ignore_errors=True)
 
