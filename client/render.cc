@@ -103,9 +103,16 @@ std::vector<Series> CurvesOf(const JobView& view) {
   return out;
 }
 
-std::string JobHeader(const v1::Job& job, int64_t now_ms) {
+// The step a watcher has seen: the job's reported step, or its latest point when that is ahead
+// (a point is forwarded as it arrives; the job's step moves with its next progress report).
+int64_t StepSeen(const JobView& view) {
+  const int64_t step = view.job().step();
+  return view.points().empty() ? step : std::max(step, view.points().rbegin()->first);
+}
+
+std::string JobHeader(const v1::Job& job, int64_t step, int64_t now_ms) {
   std::ostringstream o;
-  o << job.id() << "  " << job.name() << "  " << StateName(job.state()) << "  step " << job.step() << "/"
+  o << job.id() << "  " << job.name() << "  " << StateName(job.state()) << "  step " << step << "/"
     << job.total_steps();
   if (job.attempt() > 0) o << "  attempt " << job.attempt();
   o << "  elapsed " << Elapsed(job, now_ms);
@@ -344,7 +351,7 @@ std::string RenderJobFrame(const JobView& view, int width, int64_t now_ms) {
     }
   }
   std::ostringstream o;
-  o << JobHeader(view.job(), now_ms) << "\n";
+  o << JobHeader(view.job(), StepSeen(view), now_ms) << "\n";
   o << "accuracy\n";
   for (int r = 0; r < kRows; ++r) {
     std::string label = "     ";
@@ -443,8 +450,9 @@ std::string RenderSweepFrame(const SweepView& view, int width, int max_rows, int
         latest = Fixed(*v);
       }
     }
-    rows.push_back({j.id(), j.name(), StateName(j.state()), ProgressBar(j.step(), j.total_steps(), 10),
-                    std::to_string(j.step()) + "/" + std::to_string(j.total_steps()), Sparkline(trend, 16), latest,
+    const int64_t step = StepSeen(jv);
+    rows.push_back({j.id(), j.name(), StateName(j.state()), ProgressBar(step, j.total_steps(), 10),
+                    std::to_string(step) + "/" + std::to_string(j.total_steps()), Sparkline(trend, 16), latest,
                     Elapsed(j, now_ms)});
   }
   std::string table =

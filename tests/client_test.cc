@@ -1235,6 +1235,19 @@ TEST(ClientRender, RewindDropsThePointsFromItsStep) {
   while (std::getline(in, line) && line.rfind("1.00 |", 0) != 0) {
   }
   EXPECT_EQ(line.back(), 'T') << frame;  // task accuracy's mark
+  // The job's reported step (0: no progress report since it started) lags its points: the header
+  // shows the step of the latest point, as the sweep view's progress does.
+  EXPECT_EQ(view.job().step(), 0);
+  EXPECT_EQ(frame.rfind("j-1    running  step 60/60", 0), 0u) << frame;
+  client::SweepView sweep;
+  v1::SweepEvent se;
+  se.set_job_id("j-1");
+  *se.mutable_event() = state;
+  sweep.Apply(se);
+  *se.mutable_event() = PointEvent(20, 1, 0.5);
+  sweep.Apply(se);
+  const std::string sweep_frame = client::RenderSweepFrame(sweep, 120, 10, 0);
+  EXPECT_NE(sweep_frame.find("[###-------]  20/60"), std::string::npos) << sweep_frame;
 }
 
 // The chart's marks (README "watch"): set N of training.interventions is drawn with its number,
@@ -1328,6 +1341,20 @@ TEST(ClientRender, TwelveSetsGetTwelveDistinctMarksThatTheLegendNames) {
   EXPECT_NE(shared.find("  : = two or more curves in one cell"), std::string::npos) << shared;
   EXPECT_NE(shared.find("  1 = IIA, set local (iia_by_set)"), std::string::npos) << shared;
   EXPECT_NE(shared.find("  2 = IIA, set careful (iia_by_set)"), std::string::npos) << shared;
+
+  // Sets 10 to 35 are a to z; a 36th is listed with '-' and not drawn.
+  nlohmann::ordered_json many = nlohmann::ordered_json::object();
+  for (int i = 1; i <= 36; ++i) many["s" + std::to_string(i)] = {{"value", 0.5}};
+  v1::JobEvent lots;
+  lots.mutable_point()->set_step(100);
+  lots.mutable_point()->set_metrics_json(nlohmann::ordered_json{{"step", 100}, {"iia_by_set", many}}.dump());
+  client::JobView wide;
+  wide.Apply(state);
+  wide.Apply(lots);
+  const std::string crowded = client::RenderJobFrame(wide, 80, 0);
+  EXPECT_NE(crowded.find("  a = IIA, set s10 (iia_by_set)"), std::string::npos) << crowded;
+  EXPECT_NE(crowded.find("  z = IIA, set s35 (iia_by_set)"), std::string::npos) << crowded;
+  EXPECT_NE(crowded.find("  - = IIA, set s36 (iia_by_set, set 36: not drawn)"), std::string::npos) << crowded;
 }
 
 TEST(ClientRender, BarsSparklinesDurationsAndIds) {
