@@ -1,6 +1,8 @@
 // The trainer: intervention semantics of the network, resume determinism, the run directory,
 // and independent recomputations (NumPy for logits, statsmodels for Wilson bounds).
+#include <algorithm>
 #include <cstdio>
+#include <filesystem>
 #include <fstream>
 #include <sstream>
 
@@ -167,6 +169,8 @@ json WithoutTimings(json j) {
   j.erase("peak_rss_mb");
   j.erase("first_step_s");
   j.erase("train_steps_s");
+  j.erase("resumed_from_step");   // which steps this process trained, not what it computed
+  j.erase("steps_this_process");
   if (j.contains("provenance")) j["provenance"].erase("graft_commit");
   return j;
 }
@@ -195,12 +199,39 @@ TEST(Trainer, ResumeAfterInterruptionReproducesTheUninterruptedRun) {
                        " --stop-after-step 70");
   ASSERT_EQ(rb.exit_code, 8) << rb.output;  // stopped early with a checkpoint (README "Exit codes")
   EXPECT_NE(rb.output.find("stopped after step 70"), std::string::npos) << rb.output;
+  const std::string interrupted = ReadFile(b + "/metrics.jsonl");  // steps 0 and 40
+  std::filesystem::copy_file(b + "/checkpoint.pt", b + "/checkpoint.pt.at70");
   auto rb2 = RunCommand(Worker() + " run " + Config("parcel-routing") + " --out " + b + kSmallRun +
                         " --resume " + b);
   ASSERT_EQ(rb2.exit_code, 0) << rb2.output;
+  // A real resume, not a silent retrain (runs are deterministic, so equal metrics alone cannot
+  // tell): the kept lines are the interrupted run's bytes, wall_s included, and this process
+  // trained only the 50 remaining steps, as its progress output and result.json say.
+  EXPECT_EQ(std::count(interrupted.begin(), interrupted.end(), '\n'), 2) << interrupted;
+  EXPECT_EQ(ReadFile(b + "/metrics.jsonl").substr(0, interrupted.size()), interrupted);
+  EXPECT_NE(rb2.output.find("resuming from step 70 of 120: 2 evaluations kept, training the remaining 50 steps"),
+            std::string::npos)
+      << rb2.output;
+  EXPECT_EQ(rb2.output.find("step 40/120"), std::string::npos) << rb2.output;
+  const json resumed = json::parse(ReadFile(b + "/result.json"));
+  EXPECT_EQ(resumed["resumed_from_step"], 70);
+  EXPECT_EQ(resumed["steps_this_process"], 50);
+  EXPECT_EQ(resumed["steps"], 120);
+  // From the checkpoint alone, as a worker that fetched it from graftd has it: the checkpoint
+  // carries the kept lines itself.
+  const std::string d = dir.path() + "/d";
+  std::filesystem::create_directories(d);
+  std::filesystem::copy_file(b + "/checkpoint.pt.at70", d + "/checkpoint.pt");
+  auto rd = RunCommand(Worker() + " run " + Config("parcel-routing") + " --out " + d + kSmallRun + " --resume " + d);
+  ASSERT_EQ(rd.exit_code, 0) << rd.output;
+  EXPECT_EQ(ReadFile(d + "/metrics.jsonl").substr(0, interrupted.size()), interrupted);
+  EXPECT_EQ(MetricLines(d + "/metrics.jsonl"), MetricLines(b + "/metrics.jsonl"));
   // The same spec and seed again, uninterrupted.
   auto rc = RunCommand(Worker() + " run " + Config("parcel-routing") + " --out " + c + kSmallRun);
   ASSERT_EQ(rc.exit_code, 0) << rc.output;
+  const json fresh = json::parse(ReadFile(c + "/result.json"));
+  EXPECT_EQ(fresh["resumed_from_step"], 0);
+  EXPECT_EQ(fresh["steps_this_process"], 120);
 
   std::vector<json> ma = MetricLines(a + "/metrics.jsonl");
   ASSERT_EQ(ma.size(), 4u);  // steps 0, 40, 80, 120

@@ -228,6 +228,11 @@ class Run {
   std::chrono::steady_clock::time_point start_;
   json last_eval_;
   json step0_eval_;  // the evaluation at step 0 (before training), for result.json's controls
+  // Every metrics.jsonl line so far, kept and new, in order. Checkpoints carry them, so a resume
+  // from a checkpoint alone (a worker that fetched it) keeps the same lines byte for byte.
+  std::vector<std::string> metric_lines_;
+  bool checkpoint_had_lines_ = false;  // the loaded checkpoint carried metric_lines_
+  int64_t resumed_from_step_ = 0;      // the checkpoint's step; 0 for a fresh run
   std::chrono::steady_clock::time_point last_progress_;
   int64_t progress_step0_ = 0;
   double first_step_s_ = -1;  // process age when the first step of this process began
@@ -368,6 +373,9 @@ absl::Status Run::SaveCheckpoint(int64_t step) {
   archive.write("spec_hash", c10::IValue(hash));
   // The step-0 evaluation feeds result.json's controls; a resumed attempt cannot recompute it.
   archive.write("step0_eval", c10::IValue(step0_eval_.is_null() ? std::string() : step0_eval_.dump()));
+  std::string lines;
+  for (const auto& l : metric_lines_) lines += l + "\n";
+  archive.write("metric_lines", c10::IValue(lines));
   const fs::path path = fs::path(options_.out_dir) / "checkpoint.pt";
   const fs::path tmp = path.string() + ".tmp";
   try {
@@ -396,6 +404,17 @@ absl::Status Run::LoadCheckpoint(const fs::path& path, int64_t* step) {
     if (archive.try_read("step0_eval", step0) && !step0.toStringRef().empty()) {
       step0_eval_ = json::parse(step0.toStringRef(), nullptr, /*allow_exceptions=*/false);
       if (step0_eval_.is_discarded()) step0_eval_ = json();
+    }
+    // Checkpoints written before metric_lines existed have none; the run directory's
+    // metrics.jsonl is used for them.
+    c10::IValue lines;
+    if (archive.try_read("metric_lines", lines)) {
+      checkpoint_had_lines_ = true;
+      std::istringstream in(lines.toStringRef());
+      std::string line;
+      while (std::getline(in, line)) {
+        if (!line.empty()) metric_lines_.push_back(line);
+      }
     }
     torch::NoGradGuard no_grad;
     for (auto& item : net_->named_parameters(true)) {
@@ -552,11 +571,18 @@ absl::StatusOr<RunOutcome> Run::Execute() {
     const fs::path from(options_.resume_dir);
     absl::Status st = LoadCheckpoint(from / "checkpoint.pt", &step);
     if (!st.ok()) return st;
-    // Keep the evaluations up to the checkpoint; later ones are recomputed.
-    std::ifstream in(from / "metrics.jsonl");
-    std::string line;
-    while (std::getline(in, line)) {
-      if (line.empty()) continue;
+    // Keep the evaluations up to the checkpoint, byte for byte; later ones are recomputed. The
+    // checkpoint's own copy of them wins: a worker resuming elsewhere has only the checkpoint.
+    std::vector<std::string> candidates = std::move(metric_lines_);
+    metric_lines_.clear();
+    if (!checkpoint_had_lines_) {
+      std::ifstream in(from / "metrics.jsonl");
+      std::string line;
+      while (std::getline(in, line)) {
+        if (!line.empty()) candidates.push_back(line);
+      }
+    }
+    for (const std::string& line : candidates) {
       json m = json::parse(line, nullptr, /*allow_exceptions=*/false);
       if (m.is_discarded()) break;  // a torn last line from a crash
       if (m["step"].get<int64_t>() > step) break;
@@ -565,7 +591,14 @@ absl::StatusOr<RunOutcome> Run::Execute() {
       if (m["step"].get<int64_t>() == 0) step0_eval_ = m;
     }
     progress_step0_ = step;
+    resumed_from_step_ = step;
+    if (options_.progress != nullptr) {
+      *options_.progress << "resuming from step " << step << " of " << t.steps << ": " << metric_lines.size()
+                         << " evaluations kept, training the remaining " << (t.steps - step) << " steps\n"
+                         << std::flush;
+    }
   }
+  metric_lines_ = metric_lines;
   absl::Status st = WriteText(out / "spec.yaml", config::ResolvedSpecYaml(spec_));
   if (!st.ok()) return st;
   std::ofstream metrics(out / "metrics.jsonl.tmp", std::ios::trunc);
@@ -580,6 +613,7 @@ absl::StatusOr<RunOutcome> Run::Execute() {
     last_eval_ = Evaluate(s);
     const std::string line = last_eval_.dump();
     metrics_out << line << "\n" << std::flush;
+    metric_lines_.push_back(line);
     if (options_.on_evaluation) options_.on_evaluation(s, line);
   };
   if (step == 0) {
@@ -637,6 +671,9 @@ absl::StatusOr<RunOutcome> Run::Execute() {
   const double seconds = wall_before_ + std::chrono::duration<double>(std::chrono::steady_clock::now() - start_).count();
   json result = last_eval_;
   result["steps"] = step;
+  // What this process did: a resumed run trained only the steps after its checkpoint.
+  result["resumed_from_step"] = resumed_from_step_;
+  result["steps_this_process"] = step - resumed_from_step_;
   result["wall_s"] = seconds;  // the whole run, past the last evaluation's wall_s
   result["examples_per_s"] = seconds > 0 ? static_cast<double>(step) * t.batch_size / seconds : 0.0;
   result["peak_rss_mb"] = PeakRssMb();
