@@ -394,6 +394,14 @@ std::vector<std::string> AcceptedIssuers(const SSL* ssl) {
   return out;
 }
 
+// Whether an SSL call that returned `result` (<= 0) stopped at the socket's timeout rather than
+// at the peer closing the connection or an error.
+bool TimedOut(SSL* ssl, int result) {
+  const int e = SSL_get_error(ssl, result);
+  return e == SSL_ERROR_WANT_READ || e == SSL_ERROR_WANT_WRITE ||
+         (e == SSL_ERROR_SYSCALL && (errno == EAGAIN || errno == EWOULDBLOCK));
+}
+
 bool UseCredentials(SSL_CTX* ctx, const ClientCredentials& c) {
   X509_STORE* store = SSL_CTX_get_cert_store(ctx);
   for (auto& ca : ParseCertificates(c.ca_pem)) X509_STORE_add_cert(store, ca.get());
@@ -504,7 +512,9 @@ Diagnosis Diagnose(const std::string& address, const ClientCredentials& c, int t
     }
   }
   SSL_set_fd(ssl.get(), fd.get());
-  const bool handshake_ok = SSL_connect(ssl.get()) == 1;
+  const int connected = SSL_connect(ssl.get());
+  const bool handshake_ok = connected == 1;
+  bool timed_out = !handshake_ok && TimedOut(ssl.get(), connected);
   ERR_clear_error();
 
   if (!c.enabled()) {
@@ -532,12 +542,20 @@ Diagnosis Diagnose(const std::string& address, const ClientCredentials& c, int t
   if (handshake_ok) {
     // TLS 1.3 finishes the client's side of the handshake before graftd has checked the client
     // certificate: its verdict arrives with the first read.
-    if (SSL_write(ssl.get(), kHttp2Greeting, static_cast<int>(kHttp2GreetingSize)) > 0) {
+    const int wrote = SSL_write(ssl.get(), kHttp2Greeting, static_cast<int>(kHttp2GreetingSize));
+    if (wrote > 0) {
       char buf[64];
-      if (SSL_read(ssl.get(), buf, sizeof(buf)) > 0) return {};  // TLS is fine; the failure is elsewhere
+      const int got = SSL_read(ssl.get(), buf, sizeof(buf));
+      if (got > 0) return {};  // TLS is fine; the failure is elsewhere
+      timed_out = TimedOut(ssl.get(), got);
+    } else {
+      timed_out = TimedOut(ssl.get(), wrote);
     }
     ERR_clear_error();
   }
+  // A server too slow to answer within the timeout has said nothing about this client's
+  // certificate: no verdict, rather than a wrong one.
+  if (timed_out && seen.alert < 0) return {};
   if (seen.certificate_request || seen.alert >= 0) return {true, ClientCertificateProblem(seen, c, AcceptedIssuers(ssl.get()))};
   return {};
 }

@@ -4,7 +4,11 @@
 // another host name. A job runs end to end over TLS and over mutual TLS; every misconfiguration
 // gets its own sentence, exit code 6 from `graft`, and a worker that stops instead of retrying.
 // Settings: graftd's flags and settings file, the client's flags, variables and config file.
+#include <arpa/inet.h>
+#include <netinet/in.h>
+#include <sys/socket.h>
 #include <sys/stat.h>
+#include <unistd.h>
 
 #include <map>
 #include <sstream>
@@ -315,6 +319,20 @@ TEST(Tls, NothingListeningIsAnOutageNotAMisconfiguration) {
   const tls::Diagnosis d = tls::Diagnose("127.0.0.1:1", *creds, 2000);
   EXPECT_FALSE(d.misconfigured);
   EXPECT_NE(d.message.find("nothing accepts connections there"), std::string::npos) << d.message;
+  // A listener that accepts and never answers (a server too busy to) gives no verdict either.
+  const int fd = socket(AF_INET, SOCK_STREAM, 0);
+  ASSERT_GE(fd, 0);
+  sockaddr_in addr{};
+  addr.sin_family = AF_INET;
+  addr.sin_addr.s_addr = htonl(INADDR_LOOPBACK);
+  ASSERT_EQ(bind(fd, reinterpret_cast<sockaddr*>(&addr), sizeof(addr)), 0);
+  ASSERT_EQ(listen(fd, 4), 0);
+  socklen_t len = sizeof(addr);
+  ASSERT_EQ(getsockname(fd, reinterpret_cast<sockaddr*>(&addr), &len), 0);
+  const std::string silent = "127.0.0.1:" + std::to_string(ntohs(addr.sin_port));
+  EXPECT_FALSE(tls::Diagnose(silent, *creds, 300).misconfigured);
+  EXPECT_FALSE(tls::Diagnose(silent, tls::ClientCredentials{}, 300).misconfigured);
+  close(fd);
   // And a healthy TLS server gives no diagnosis at all.
   Cluster c(30, {}, ClusterTls{certs.good(), false});
   const tls::Diagnosis fine = tls::Diagnose(c.address(), *creds, 2000);
