@@ -1,11 +1,29 @@
 #!/usr/bin/env bash
 # Installs what graft needs, builds it with warnings as errors and runs every test.
-# Usage: scripts/test.sh [ctest arguments...]   (e.g. scripts/test.sh -R Spec)
+# Usage: scripts/test.sh [--sanitize address|thread] [ctest arguments...]   (e.g. scripts/test.sh -R Spec)
+# --sanitize builds the whole tree with that sanitizer into its own folder (build-address or
+# build-thread) and runs the tests there, with the suppressions of tests/sanitizer/.
 set -euo pipefail
 cd "$(dirname "$0")/.."
 
+build=build sanitize=""
+if [[ "${1:-}" == "--sanitize" ]]; then
+  sanitize="${2:-}"
+  case "$sanitize" in
+    address|thread) build="build-$sanitize" ;;
+    *) echo "test.sh: --sanitize takes address or thread, not '${sanitize}'" >&2; exit 3 ;;
+  esac
+  shift 2
+fi
+
 bash scripts/setup.sh
-cmake -S . -B build -DCMAKE_BUILD_TYPE=RelWithDebInfo -DGRAFT_WERROR=ON
-cmake --build build -j2
-cd build
+cmake -S . -B "$build" -DCMAKE_BUILD_TYPE=RelWithDebInfo -DGRAFT_WERROR=ON -DGRAFT_SANITIZE="$sanitize"
+cmake --build "$build" -j2
+sup="$PWD/tests/sanitizer"
+# Reports fail the test that triggered them (exit code 66), also in the child processes (graftd,
+# graft-worker) the tests start, which inherit these settings.
+export ASAN_OPTIONS="detect_leaks=1:abort_on_error=0:exitcode=66:${ASAN_OPTIONS:-}"
+export LSAN_OPTIONS="suppressions=$sup/lsan.supp:print_suppressions=0:${LSAN_OPTIONS:-}"
+export TSAN_OPTIONS="suppressions=$sup/tsan.supp:exitcode=66:halt_on_error=0:${TSAN_OPTIONS:-}"
+cd "$build"
 ctest --output-on-failure --timeout 1500 "$@"
