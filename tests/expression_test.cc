@@ -330,9 +330,11 @@ TEST(Expression, TernaryReturnsSymbols) {
 }
 
 TEST(Expression, FlooredModuloTakesTheDivisorsSign) {
-  // Python language reference, 6.7 Binary arithmetic operations: the result of % has the sign
-  // of the second operand; the values are those Python 3 prints for these (worked by hand,
-  // and the random cross-check below runs them through Debian's /usr/bin/python3).
+  // Python language reference, 6.7 Binary arithmetic operations (section and wording from
+  // memory): the result of % has the sign of the second operand. The values are those Python 3
+  // gives for these, worked by hand; these four cases are not themselves run through Python, but
+  // the random cross-check below runs random expressions with % and mod, on inputs from -4 to
+  // 4, through Debian's /usr/bin/python3.
   EXPECT_EQ(Constant("-7 % 3"), 2);
   EXPECT_EQ(Constant("7 % -3"), -2);
   EXPECT_EQ(Constant("-7 % -3"), -1);
@@ -541,8 +543,8 @@ std::string Json(double x) {
 }
 
 TEST(Expression, AgreesWithPythonOnRandomExpressions) {
-  // External reference: Python language reference, 6.7 Binary arithmetic operations: floored
-  // modulo; evaluated by Debian's /usr/bin/python3 (tests/python/check_expressions.py parses
+  // External reference: Python language reference, 6.7 Binary arithmetic operations (section
+  // from memory): floored modulo; evaluated by Debian's /usr/bin/python3 (tests/python/check_expressions.py parses
   // the documented grammar independently and lets Python do the arithmetic).
   ExpressionContext c;
   c.variables = {{"x", ValueType::kNumber},    {"y", ValueType::kNumber},

@@ -18,7 +18,8 @@ parenthesised Python expression, which Python evaluates with its own arithmetic:
   comparisons -> int(a < b), true / false -> 1 / 0, min / max / abs -> Python's built-ins (min((a, b)) etc.),
   symbols -> Python strings (equal only to the same name).
 Floored modulo is Python's `%` (Python language reference, 6.7 Binary arithmetic operations:
-"The modulo operator always yields a result with the same sign as its second operand").
+"The modulo operator always yields a result with the same sign as its second operand"; section
+and quotation from memory).
 A zero divisor must raise ZeroDivisionError in Python exactly where graft reports an error.
 
 Prints a summary and exits 0 when every case agrees within 1e-9, 1 on any disagreement,

@@ -13,7 +13,7 @@ Checks, per rotation:
   - S is skew-symmetric: max |S + S^T| <= 1e-12 (it is built as A - A^T, so exactly 0);
   - R is orthogonal: max |R^T R - I| <= 1e-12 (definition of an orthogonal matrix);
   - R equals scipy.linalg.expm(S) within 1e-12 (SciPy's Pade approximation with scaling and
-    squaring, Al-Mohy and Higham 2009, is the reference);
+    squaring, Al-Mohy and Higham 2009 by SciPy's documentation as remembered, is the reference);
   - with --min-turn X: max |R - I| >= X, so a check of a barely moved rotation is not passed
     off as a learned one.
 

@@ -10,7 +10,7 @@ digits). Blank lines and lines starting with '#' are ignored.
 Reference: statsmodels' Wilson interval,
   statsmodels.stats.proportion.proportion_confint(k, n, alpha=0.05, method="wilson"),
 which implements the score interval of E. B. Wilson, "Probable inference, the law of
-succession, and statistical inference", JASA 22 (1927) 209-212.
+succession, and statistical inference", JASA 22 (1927) 209-212 (citation from memory).
 Both bounds must agree within 1e-12 absolute.
 
 Exit codes: 0 all intervals agree, 1 any disagreement (each one is printed),
