@@ -155,19 +155,72 @@ absl::StatusOr<JobRecord> Coordinator::LoadVisible(const Principal& who, const s
   return job;
 }
 
+absl::Status Coordinator::CheckWorker(const Principal& who, const std::string& worker_id) {
+  auto w = store_->GetWorker(worker_id);
+  if (!w.ok()) return w.status();
+  if (!w->has_value()) {
+    return absl::NotFoundError(absl::StrCat("worker '", worker_id, "' is not registered; call RegisterWorker first"));
+  }
+  const std::string& owner = (*w)->token_name;
+  if (owner.empty()) {
+    return absl::PermissionDeniedError(absl::StrCat("worker '", worker_id,
+                                                    "' was registered by an older graftd that did not record its "
+                                                    "token; it must register again"));
+  }
+  if (owner != who.name) {
+    return absl::PermissionDeniedError(absl::StrCat("worker '", worker_id, "' belongs to another worker token; '",
+                                                    who.name, "' may act only as the workers it registered"));
+  }
+  return absl::OkStatus();
+}
+
+absl::Status Coordinator::CheckLength(const std::string& what, const std::string& text, int64_t max,
+                                      const char* setting) const {
+  if (static_cast<int64_t>(text.size()) <= max) return absl::OkStatus();
+  return absl::InvalidArgumentError(absl::StrCat(what, " is ", text.size(), " bytes; this coordinator accepts at most ",
+                                                 setting, " = ", max));
+}
+
 absl::StatusOr<v1::SubmitJobResponse> Coordinator::Submit(const Principal& who, const v1::SubmitJobRequest& request) {
-  if (static_cast<int64_t>(request.config_yaml().size()) > options_.max_config_bytes) {
-    return absl::ResourceExhaustedError(absl::StrCat("the config is ", request.config_yaml().size(),
-                                                     " bytes; this coordinator accepts at most ",
+  int64_t bytes = static_cast<int64_t>(request.config_yaml().size());
+  for (const auto& o : request.overrides()) bytes += static_cast<int64_t>(o.size());
+  if (bytes > options_.max_config_bytes) {
+    return absl::ResourceExhaustedError(absl::StrCat("the config (with its overrides) is ", bytes,
+                                                     " bytes; this coordinator accepts at most max_config_bytes = ",
                                                      options_.max_config_bytes));
+  }
+  if (absl::Status st = CheckLength("source_name", request.source_name(), options_.max_name_bytes, "max_name_bytes");
+      !st.ok()) {
+    return st;
+  }
+  if (request.labels_size() > options_.max_labels_per_job) {
+    return absl::InvalidArgumentError(absl::StrCat(request.labels_size(), " labels; this coordinator accepts at most ",
+                                                   "max_labels_per_job = ", options_.max_labels_per_job, " per job"));
+  }
+  for (const auto& [k, v] : request.labels()) {
+    if (k.empty()) return absl::InvalidArgumentError("a label needs a key");
+    const std::string shown = k.substr(0, 40);
+    if (absl::Status st = CheckLength("a label key", k, options_.max_label_bytes, "max_label_bytes"); !st.ok()) return st;
+    if (absl::Status st = CheckLength(absl::StrCat("the value of label '", shown, "'"), v, options_.max_label_bytes,
+                                      "max_label_bytes");
+        !st.ok()) {
+      return st;
+    }
   }
   const std::string source = request.source_name().empty() ? "config.yaml" : request.source_name();
   std::vector<std::string> overrides(request.overrides().begin(), request.overrides().end());
   // The whole sweep is validated before anything is stored.
-  auto plan = config::PlanFromText(request.config_yaml(), source, overrides, options_.max_sweep_jobs);
+  auto plan = config::PlanFromText(request.config_yaml(), source, overrides, options_.max_sweep_jobs, options_.spec);
   if (!plan.ok()) {
     if (absl::IsInvalidArgument(plan.status()) || absl::IsResourceExhausted(plan.status())) return plan.status();
     return absl::InvalidArgumentError(plan.status().message());
+  }
+  for (const config::PlannedJob& p : plan->jobs) {
+    if (absl::Status st = CheckLength(absl::StrCat("the job name '", p.name.substr(0, 40), "...'"), p.name,
+                                      options_.max_name_bytes, "max_name_bytes");
+        !st.ok()) {
+      return st;
+    }
   }
   std::vector<JobRecord> records;
   for (const config::PlannedJob& p : plan->jobs) {
@@ -252,6 +305,9 @@ absl::StatusOr<v1::ListJobsResponse> Coordinator::List(const Principal& who, con
 }
 
 absl::StatusOr<v1::Job> Coordinator::Cancel(const Principal& who, const std::string& job_id, const std::string& reason) {
+  if (absl::Status st = CheckLength("the reason", reason, options_.max_reason_bytes, "max_reason_bytes"); !st.ok()) {
+    return st;
+  }
   Deferred deferred;
   v1::Job out;
   {
@@ -433,6 +489,9 @@ absl::StatusOr<int64_t> Coordinator::WatchSweep(const Principal& who, const std:
 
 absl::StatusOr<v1::CancelSweepResponse> Coordinator::CancelSweep(const Principal& who, const std::string& sweep_id,
                                                                  const std::string& reason) {
+  if (absl::Status st = CheckLength("the reason", reason, options_.max_reason_bytes, "max_reason_bytes"); !st.ok()) {
+    return st;
+  }
   std::vector<std::string> ids;
   {
     std::lock_guard<std::mutex> lock(mu_);
@@ -496,6 +555,13 @@ void Coordinator::Unwatch(int64_t watch_id) {
 
 absl::StatusOr<v1::RegisterWorkerResponse> Coordinator::Register(const Principal& who,
                                                                  const v1::RegisterWorkerRequest& request) {
+  for (const auto& [what, text] : {std::pair<const char*, const std::string*>{"host", &request.host()},
+                                   {"version", &request.version()},
+                                   {"slurm_job_id", &request.slurm_job_id()},
+                                   {"slurm_array_job_id", &request.slurm_array_job_id()},
+                                   {"slurm_array_task_id", &request.slurm_array_task_id()}}) {
+    if (absl::Status st = CheckLength(what, *text, options_.max_name_bytes, "max_name_bytes"); !st.ok()) return st;
+  }
   std::lock_guard<std::mutex> lock(mu_);
   WorkerRecord w;
   w.id = absl::StrCat("w-", next_worker_++, "-", request.host().empty() ? who.name : request.host());
@@ -507,6 +573,7 @@ absl::StatusOr<v1::RegisterWorkerResponse> Coordinator::Register(const Principal
   w.slurm_array_job_id = request.slurm_array_job_id();
   w.slurm_array_task_id = request.slurm_array_task_id();
   w.registered_ms = w.last_seen_ms = clock_->NowMs();
+  w.token_name = who.name;
   absl::Status st = store_->PutWorker(w);
   if (!st.ok()) return st;
   if (!w.slurm_array_job_id.empty()) pending_.erase(absl::StrCat(w.slurm_array_job_id, "_", w.slurm_array_task_id));
@@ -575,28 +642,31 @@ void Coordinator::ServeWaiters(Deferred& deferred) {
   }
 }
 
-void Coordinator::Lease(const v1::LeaseJobRequest& request, LeaseDone done) {
+void Coordinator::Lease(const Principal& who, const v1::LeaseJobRequest& request, LeaseDone done) {
   Deferred deferred;
   {
     std::lock_guard<std::mutex> lock(mu_);
     if (stopping_) {
       deferred.push_back([done] { done(absl::UnavailableError("the coordinator is shutting down"), v1::LeaseJobResponse()); });
     } else {
-      // Seen: renew the worker's last_seen. A worker that deregistered must register again.
+      // Seen: renew the worker's last_seen. A worker that deregistered must register again, and so
+      // must one registered before worker ids were bound to tokens (token_name "").
       auto worker = store_->GetWorker(request.worker_id());
-      bool known = false;
-      if (worker.ok() && worker->has_value() && (*worker)->left_ms == 0) {
-        known = true;
+      absl::Status refused;
+      if (!worker.ok()) {
+        refused = worker.status();
+      } else if (worker->has_value() && !(*worker)->token_name.empty() && (*worker)->token_name != who.name) {
+        refused = CheckWorker(who, request.worker_id());
+      } else if (!worker->has_value() || (*worker)->left_ms != 0 || (*worker)->token_name.empty()) {
+        refused = absl::NotFoundError(
+            absl::StrCat("worker '", request.worker_id(), "' is not registered; call RegisterWorker first"));
+      }
+      if (!refused.ok()) {
+        deferred.push_back([done, refused] { done(refused, v1::LeaseJobResponse()); });
+      } else {
         (*worker)->last_seen_ms = clock_->NowMs();
         seen_ms_.erase(request.worker_id());
         (void)store_->PutWorker(**worker);
-      }
-      if (!known) {
-        deferred.push_back([done, id = request.worker_id()] {
-          done(absl::NotFoundError(absl::StrCat("worker '", id, "' is not registered; call RegisterWorker first")),
-               v1::LeaseJobResponse());
-        });
-      } else {
         const int64_t wait = std::clamp<int64_t>(request.wait_ms(), 0, 60000);
         waiters_.push_back(Waiter{request.worker_id(), clock_->NowMs() + wait, std::move(done)});
         ServeWaiters(deferred);
@@ -623,11 +693,17 @@ absl::StatusOr<JobRecord> Coordinator::LoadLeased(const std::string& job_id, con
       "); drop it"));
 }
 
-absl::StatusOr<v1::ReportResponse> Coordinator::Report(const v1::ReportRequest& request) {
+absl::StatusOr<v1::ReportResponse> Coordinator::Report(const Principal& who, const v1::ReportRequest& request) {
   Deferred deferred;
   v1::ReportResponse out;
   {
+    if (request.points_size() > options_.max_points_per_report) {
+      return absl::InvalidArgumentError(absl::StrCat(request.points_size(), " points in one report; this coordinator ",
+                                                     "accepts at most max_points_per_report = ",
+                                                     options_.max_points_per_report, "; send them in batches"));
+    }
     std::lock_guard<std::mutex> lock(mu_);
+    if (absl::Status st = CheckWorker(who, request.worker_id()); !st.ok()) return st;
     auto job = LoadLeased(request.job_id(), request.worker_id(), request.attempt(), /*allow_cancelled=*/true);
     if (!job.ok()) return job.status();
     Seen(request.worker_id());
@@ -667,8 +743,9 @@ absl::StatusOr<v1::ReportResponse> Coordinator::Report(const v1::ReportRequest& 
   return out;
 }
 
-absl::StatusOr<ArtifactRecord> Coordinator::CheckpointFor(const v1::FetchCheckpointRequest& request) {
+absl::StatusOr<ArtifactRecord> Coordinator::CheckpointFor(const Principal& who, const v1::FetchCheckpointRequest& request) {
   std::lock_guard<std::mutex> lock(mu_);
+  if (absl::Status st = CheckWorker(who, request.worker_id()); !st.ok()) return st;
   auto job = LoadLeased(request.job_id(), request.worker_id(), request.attempt(), false);
   if (!job.ok()) return job.status();
   auto a = store_->GetArtifact(job->id, "checkpoint.pt");
@@ -677,17 +754,22 @@ absl::StatusOr<ArtifactRecord> Coordinator::CheckpointFor(const v1::FetchCheckpo
   return **a;
 }
 
-absl::StatusOr<std::unique_ptr<Upload>> Coordinator::BeginUpload(const v1::ArtifactHeader& header) {
+absl::StatusOr<std::unique_ptr<Upload>> Coordinator::BeginUpload(const Principal& who, const v1::ArtifactHeader& header) {
   if (!IsArtifactName(header.name())) {
     return absl::InvalidArgumentError(absl::StrCat("'", header.name(), "' is not an artifact name; expected one of ",
                                                    absl::StrJoin(kArtifactNames, ", ")));
   }
-  if (header.total_bytes() < 0 || header.total_bytes() > options_.max_artifact_bytes) {
-    return absl::InvalidArgumentError(absl::StrCat("artifact size ", header.total_bytes(), " outside [0, ",
-                                                   options_.max_artifact_bytes, "]"));
+  if (header.total_bytes() < 0) {
+    return absl::InvalidArgumentError(absl::StrCat("total_bytes: ", header.total_bytes(), " is negative"));
+  }
+  if (header.total_bytes() > options_.max_artifact_bytes) {
+    return absl::InvalidArgumentError(absl::StrCat("the artifact ", header.name(), " is ", header.total_bytes(),
+                                                   " bytes; this coordinator accepts at most max_artifact_bytes = ",
+                                                   options_.max_artifact_bytes));
   }
   if (header.sha256().size() != 64) return absl::InvalidArgumentError("sha256: expected 64 hex digits");
   std::lock_guard<std::mutex> lock(mu_);
+  if (absl::Status st = CheckWorker(who, header.worker_id()); !st.ok()) return st;
   auto job = LoadLeased(header.job_id(), header.worker_id(), header.attempt(), false);
   if (!job.ok()) return job.status();
   std::unique_ptr<Upload> up(new Upload());
@@ -743,10 +825,16 @@ absl::StatusOr<int64_t> Coordinator::CommitUpload(Upload& up) {
   return up.written_;
 }
 
-absl::Status Coordinator::Finish(const v1::FinishJobRequest& request) {
+absl::Status Coordinator::Finish(const Principal& who, const v1::FinishJobRequest& request) {
+  for (const std::string* reason : {&request.failed_reason(), &request.handed_back_reason(), &request.stopped_reason()}) {
+    if (absl::Status st = CheckLength("the reason", *reason, options_.max_reason_bytes, "max_reason_bytes"); !st.ok()) {
+      return st;
+    }
+  }
   Deferred deferred;
   {
     std::lock_guard<std::mutex> lock(mu_);
+    if (absl::Status st = CheckWorker(who, request.worker_id()); !st.ok()) return st;
     const bool stopped = request.outcome_case() == v1::FinishJobRequest::kStoppedReason;
     auto job = LoadLeased(request.job_id(), request.worker_id(), request.attempt(), /*allow_cancelled=*/true);
     if (!job.ok()) return job.status();
@@ -813,8 +901,13 @@ void Coordinator::CountFinished(const std::string& worker_id) {
   if (!st.ok()) log_->warn("recording a finished job of {} failed: {}", worker_id, st.ToString());
 }
 
-absl::Status Coordinator::Deregister(const v1::DeregisterWorkerRequest& request) {
+absl::Status Coordinator::Deregister(const Principal& who, const v1::DeregisterWorkerRequest& request) {
+  if (absl::Status st = CheckLength("the reason", request.reason(), options_.max_reason_bytes, "max_reason_bytes");
+      !st.ok()) {
+    return st;
+  }
   std::lock_guard<std::mutex> lock(mu_);
+  if (absl::Status st = CheckWorker(who, request.worker_id()); !st.ok()) return st;
   auto w = store_->GetWorker(request.worker_id());
   if (!w.ok()) return w.status();
   if (!w->has_value()) return absl::NotFoundError(absl::StrCat("worker '", request.worker_id(), "' is not registered"));

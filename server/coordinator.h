@@ -20,6 +20,7 @@
 
 #include "absl/status/statusor.h"
 #include "graft/v1/graft.pb.h"
+#include "configs/reader/spec.h"
 #include "proto/sha256.h"
 #include "server/auth.h"
 #include "server/job_store.h"
@@ -35,13 +36,24 @@ class Clock {
 };
 std::unique_ptr<Clock> CreateSystemClock();
 
+// The limits are graftd's settings of the same names (configs/graftd.yaml documents each); a
+// request beyond one is refused, INVALID_ARGUMENT or RESOURCE_EXHAUSTED, with a message naming the
+// setting and its value, before anything is stored.
 struct CoordinatorOptions {
   std::string data_dir = "./var/graft";  // database and artifacts
   int64_t lease_ms = 30000;               // a worker must report within this
   int max_attempts = 3;                   // leases a job may use before it fails
   int64_t max_config_bytes = 1 << 20;     // larger submissions are refused
   int64_t max_sweep_jobs = 1000;          // larger sweeps are refused before anything is stored
-  int64_t max_artifact_bytes = int64_t{4} << 30;
+  int64_t max_artifact_bytes = int64_t{4} << 30;  // one uploaded artifact (checkpoint.pt, weights.pt ...)
+  config::SpecLimits spec;                // variables, domains, tables, input space, parameters, steps
+  int64_t max_points_per_report = 1000;   // points in one Report
+  int64_t max_name_bytes = 256;           // a job's name (the config's name), source name, a worker's host and version
+  int64_t max_label_bytes = 256;          // each label key and each label value
+  int64_t max_labels_per_job = 32;        // labels of one submission
+  int64_t max_reason_bytes = 16384;       // a cancel, failure, hand-back, stop or leave reason
+  int64_t max_watches_per_user = 64;      // open WatchJob and WatchSweep streams of one token name
+  int64_t max_requests_in_flight_per_token = 512;  // calls of one token name not yet answered (long polls included)
   int64_t sweep_interval_ms = 200;        // how often lapsed leases and long polls are checked
 };
 
@@ -76,6 +88,8 @@ class Coordinator {
   absl::Status Start();
   // Stops the sweeper and answers every waiting long poll with "no job".
   void Shutdown();
+
+  const CoordinatorOptions& options() const { return options_; }
 
   // --- people and scripts
   absl::StatusOr<v1::SubmitJobResponse> Submit(const Principal& who, const v1::SubmitJobRequest& request);
@@ -122,19 +136,23 @@ class Coordinator {
   absl::StatusOr<int64_t> WatchSweep(const Principal& who, const std::string& sweep_id, int64_t from_step,
                                      SweepSink sink);
 
-  // --- workers (the caller has already checked the worker role)
+  // --- workers (the caller has already checked the worker role). A worker id is bound to the
+  // name of the token that registered it: every later call naming that worker must come with a
+  // token of the same name, or it is PermissionDenied; an unknown worker id is NotFound. Report,
+  // FetchCheckpoint, uploads and Finish also need the job's current lease (worker and attempt),
+  // or they are FailedPrecondition.
   absl::StatusOr<v1::RegisterWorkerResponse> Register(const Principal& who, const v1::RegisterWorkerRequest& request);
   // Completes `done` (exactly once, from any thread) within request.wait_ms, with a job or
   // has_job = false.
   using LeaseDone = std::function<void(absl::Status status, const v1::LeaseJobResponse& response)>;
-  void Lease(const v1::LeaseJobRequest& request, LeaseDone done);
-  absl::StatusOr<v1::ReportResponse> Report(const v1::ReportRequest& request);
+  void Lease(const Principal& who, const v1::LeaseJobRequest& request, LeaseDone done);
+  absl::StatusOr<v1::ReportResponse> Report(const Principal& who, const v1::ReportRequest& request);
   // The worker leaves: shown as gone from now on. NotFound for an unknown worker.
-  absl::Status Deregister(const v1::DeregisterWorkerRequest& request);
-  absl::StatusOr<ArtifactRecord> CheckpointFor(const v1::FetchCheckpointRequest& request);
-  absl::StatusOr<std::unique_ptr<Upload>> BeginUpload(const v1::ArtifactHeader& header);
+  absl::Status Deregister(const Principal& who, const v1::DeregisterWorkerRequest& request);
+  absl::StatusOr<ArtifactRecord> CheckpointFor(const Principal& who, const v1::FetchCheckpointRequest& request);
+  absl::StatusOr<std::unique_ptr<Upload>> BeginUpload(const Principal& who, const v1::ArtifactHeader& header);
   absl::StatusOr<int64_t> CommitUpload(Upload& upload);
-  absl::Status Finish(const v1::FinishJobRequest& request);
+  absl::Status Finish(const Principal& who, const v1::FinishJobRequest& request);
 
  private:
   struct Waiter {
@@ -152,6 +170,11 @@ class Coordinator {
   using Deferred = std::vector<std::function<void()>>;  // callbacks to run after unlocking
 
   absl::StatusOr<JobRecord> LoadVisible(const Principal& who, const std::string& job_id);  // REQUIRES: mu_
+  // InvalidArgument "WHAT is N bytes; this coordinator accepts at most SETTING = MAX" when `text` is longer.
+  absl::Status CheckLength(const std::string& what, const std::string& text, int64_t max, const char* setting) const;
+  // OK when `worker_id` is registered and was registered by a token named who.name: NotFound for
+  // an unknown worker, PermissionDenied for another token's worker. REQUIRES: mu_
+  absl::Status CheckWorker(const Principal& who, const std::string& worker_id);
   absl::StatusOr<JobRecord> LoadLeased(const std::string& job_id, const std::string& worker_id, int32_t attempt,
                                        bool allow_cancelled);  // REQUIRES: mu_
   v1::Job ToProto(const JobRecord& job, bool with_texts);

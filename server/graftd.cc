@@ -1,5 +1,6 @@
 #include "server/graftd.h"
 
+#include <sys/stat.h>
 #include <unistd.h>
 
 #include <chrono>
@@ -32,7 +33,25 @@ std::string WorkerAddress(const std::string& listen, int port) {
   return absl::StrCat(host, ":", port);
 }
 
-int RunGraftd(const GraftdConfig& config, const std::atomic<bool>* stop) {
+namespace {
+
+// Warns when the tokens file may be read or written by anyone but its owner: hashes of tokens
+// are not the tokens, but a writable file lets its writer mint any role.
+void CheckTokensFileMode(const std::string& path, spdlog::logger& log) {
+  struct stat st {};
+  if (::stat(path.c_str(), &st) != 0) return;
+  if ((st.st_mode & 0077) != 0) {
+    log.warn("the tokens file {} has mode {:04o}: others can read or change it (tokens can be minted by anyone who "
+             "can write it); chmod 600 {}",
+             path, static_cast<unsigned>(st.st_mode & 07777), path);
+  }
+}
+
+}  // namespace
+
+int RunGraftd(const GraftdConfig& config, const std::atomic<bool>* stop, std::atomic<bool>* reload) {
+  // Everything graftd creates (data dir, database, artifacts) is for its own user only.
+  ::umask(077);
   auto log = spdlog::stderr_color_mt("graftd");
   log->set_pattern("%Y-%m-%dT%H:%M:%S.%e %^%l%$ %v");
   if (absl::Status st = CheckTransport(config); !st.ok()) {
@@ -68,28 +87,50 @@ int RunGraftd(const GraftdConfig& config, const std::atomic<bool>* stop) {
     log->error("no tokens file: pass --tokens-file FILE (a YAML list of {{name, role, sha256}})");
     return 2;
   }
-  auto tokens = TokenTable::Load(config.tokens_file);
+  auto tokens = LiveTokens::Open(config.tokens_file);
   if (!tokens.ok()) {
     log->error("{}", std::string(tokens.status().message()));
     return 2;
   }
+  CheckTokensFileMode(config.tokens_file, *log);
   std::error_code ec;
-  std::filesystem::create_directories(config.data_dir, ec);
-  if (ec) {
-    log->error("{}: cannot create the data dir: {}", config.data_dir, ec.message());
-    return 1;
+  if (!std::filesystem::exists(config.data_dir, ec)) {
+    std::filesystem::create_directories(config.data_dir, ec);
+    if (ec) {
+      log->error("{}: cannot create the data dir: {}", config.data_dir, ec.message());
+      return 1;
+    }
+    std::filesystem::permissions(config.data_dir, std::filesystem::perms::owner_all, ec);
+  } else {
+    struct stat st {};
+    if (::stat(config.data_dir.c_str(), &st) == 0 && (st.st_mode & 0077) != 0) {
+      log->warn("the data dir {} has mode {:04o}: others can reach the database and artifacts; chmod 700 {}",
+                config.data_dir, static_cast<unsigned>(st.st_mode & 07777), config.data_dir);
+    }
   }
-  auto store = OpenSqliteJobStore((std::filesystem::path(config.data_dir) / "graft.db").string(), config.durability);
+  const std::string db_path = (std::filesystem::path(config.data_dir) / "graft.db").string();
+  auto store = OpenSqliteJobStore(db_path, config.durability);
   if (!store.ok()) {
     log->error("{}", store.status().ToString());
     return 1;
   }
+  // A database made by an older graftd (before the umask above) becomes private too.
+  for (const char* suffix : {"", "-wal", "-shm"}) ::chmod((db_path + suffix).c_str(), 0600);
   CoordinatorOptions options;
   options.data_dir = config.data_dir;
   options.lease_ms = config.lease_seconds * 1000;
   options.max_attempts = config.max_attempts;
   options.max_config_bytes = config.max_config_bytes;
   options.max_sweep_jobs = config.max_sweep_jobs;
+  options.spec = config.spec_limits;
+  options.max_artifact_bytes = config.max_artifact_bytes;
+  options.max_points_per_report = config.max_points_per_report;
+  options.max_name_bytes = config.max_name_bytes;
+  options.max_label_bytes = config.max_label_bytes;
+  options.max_labels_per_job = config.max_labels_per_job;
+  options.max_reason_bytes = config.max_reason_bytes;
+  options.max_watches_per_user = config.max_watches_per_user;
+  options.max_requests_in_flight_per_token = config.max_requests_in_flight_per_token;
   auto clock = CreateSystemClock();
   Coordinator coordinator(std::move(*store), options, clock.get(), log);
   absl::Status st = coordinator.Start();
@@ -97,8 +138,8 @@ int RunGraftd(const GraftdConfig& config, const std::atomic<bool>* stop) {
     log->error("recovery failed: {}", st.ToString());
     return 1;
   }
-  auto jobs = CreateJobsService(&coordinator, &*tokens);
-  auto workers = CreateWorkersService(&coordinator, &*tokens);
+  auto jobs = CreateJobsService(&coordinator, tokens->get());
+  auto workers = CreateWorkersService(&coordinator, tokens->get());
   grpc::reflection::InitProtoReflectionServerBuilderPlugin();
   grpc::ServerBuilder builder;
   int port = 0;
@@ -111,9 +152,9 @@ int RunGraftd(const GraftdConfig& config, const std::atomic<bool>* stop) {
     log->error("cannot listen on {}", config.listen);
     return 1;
   }
-  log->info("graftd {} listening on {} (port {}), data dir {}, {} tokens, lease {} s, {} attempts",
-            GRAFT_VERSION_STRING, config.listen, port, config.data_dir, tokens->size(), config.lease_seconds,
-            config.max_attempts);
+  log->info("graftd {} listening on {} (port {}), data dir {}, {} tokens ({} valid), lease {} s, {} attempts",
+            GRAFT_VERSION_STRING, config.listen, port, config.data_dir, (*tokens)->Current()->size(),
+            (*tokens)->Current()->active_count(), config.lease_seconds, config.max_attempts);
   if (config.tls() || IsLoopbackAddress(config.listen)) {
     log->info("{}", transport);
   } else {
@@ -138,7 +179,25 @@ int RunGraftd(const GraftdConfig& config, const std::atomic<bool>* stop) {
     launcher = std::make_unique<Launcher>(&coordinator, l, runner.get(), clock.get(), log);
     launcher->Start();
   }
-  while (!stop->load()) std::this_thread::sleep_for(std::chrono::milliseconds(100));
+  // The tokens file is reread on SIGHUP at once, and whenever its change time, size or inode
+  // moves (checked every second); a file that fails to load keeps the previous tokens.
+  auto last_check = std::chrono::steady_clock::now();
+  while (!stop->load()) {
+    std::this_thread::sleep_for(std::chrono::milliseconds(100));
+    const bool hup = reload != nullptr && reload->exchange(false);
+    const auto now = std::chrono::steady_clock::now();
+    if (!hup && now - last_check < std::chrono::seconds(1)) continue;
+    last_check = now;
+    auto changed = (*tokens)->Reload(/*force=*/hup);
+    if (!changed.ok()) {
+      log->error("tokens file not reloaded, the previous tokens stay in force: {}", std::string(changed.status().message()));
+    } else if (*changed) {
+      auto table = (*tokens)->Current();
+      log->info("tokens file {} reloaded{}: {} tokens, {} valid, {} revoked", config.tokens_file, hup ? " (SIGHUP)" : "",
+                table->size(), table->active_count(), table->size() - table->active_count());
+      CheckTokensFileMode(config.tokens_file, *log);
+    }
+  }
   log->info("stopping");
   if (launcher) launcher->Stop();
   coordinator.Shutdown();

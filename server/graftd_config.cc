@@ -1,5 +1,6 @@
 #include "server/graftd_config.h"
 
+#include <algorithm>
 #include <cstdlib>
 #include <vector>
 
@@ -103,10 +104,34 @@ absl::Status LoadGraftdConfig(const std::string& path, GraftdConfig* config) {
   if (!tree.ok()) return tree.status();
   if (tree->IsNull()) return absl::OkStatus();
   if (!tree->IsMap()) return absl::InvalidArgumentError(absl::StrCat(tree->loc.ToString(), ": expected a map of settings"));
-  const std::vector<std::string> keys = {"listen",         "data_dir",         "tokens_file", "lease_seconds",
-                                         "max_attempts",   "max_config_bytes", "durability",  "allow_plaintext",
-                                         "max_sweep_jobs", "tls_cert",         "tls_key",     "client_ca",
-                                         "launcher"};
+  // The limits: key, smallest and largest value accepted, and the setting.
+  struct LimitKey {
+    const char* key;
+    int64_t lo, hi;
+    int64_t* value;
+  };
+  config::SpecLimits& spec = config->spec_limits;
+  const std::vector<LimitKey> limit_keys = {
+      {"max_variables", 2, 100000, &spec.max_variables},
+      {"max_domain_values", 2, int64_t{1} << 22, &spec.max_domain_values},
+      {"max_table_entries", 1, int64_t{1} << 30, &spec.max_table_entries},
+      {"max_input_space", 1, int64_t{1} << 24, &spec.max_input_space},
+      {"max_network_parameters", 1, int64_t{1} << 40, &spec.max_network_parameters},
+      {"max_steps", 1, int64_t{1} << 40, &spec.max_steps},
+      {"max_artifact_bytes", 1024, int64_t{1} << 40, &config->max_artifact_bytes},
+      {"max_points_per_report", 1, 1000000, &config->max_points_per_report},
+      {"max_name_bytes", 16, 65536, &config->max_name_bytes},
+      {"max_label_bytes", 1, 65536, &config->max_label_bytes},
+      {"max_labels_per_job", 0, 10000, &config->max_labels_per_job},
+      {"max_reason_bytes", 64, int64_t{1} << 20, &config->max_reason_bytes},
+      {"max_watches_per_user", 1, 100000, &config->max_watches_per_user},
+      {"max_requests_in_flight_per_token", 1, 1000000, &config->max_requests_in_flight_per_token},
+  };
+  std::vector<std::string> keys = {"listen",         "data_dir",         "tokens_file", "lease_seconds",
+                                   "max_attempts",   "max_config_bytes", "durability",  "allow_plaintext",
+                                   "max_sweep_jobs", "tls_cert",         "tls_key",     "client_ca",
+                                   "launcher"};
+  for (const LimitKey& l : limit_keys) keys.push_back(l.key);
   std::vector<std::string> errors;
   auto whole = [&](const config::ConfigNode& v, const std::string& key, int64_t lo, int64_t hi, int64_t* out) {
     char* end = nullptr;
@@ -120,7 +145,10 @@ absl::Status LoadGraftdConfig(const std::string& path, GraftdConfig* config) {
   };
   for (const auto& [k, v] : tree->entries) {
     const std::string& key = k.scalar;
-    if (key == "listen" || key == "data_dir" || key == "tokens_file") {
+    auto limit = std::find_if(limit_keys.begin(), limit_keys.end(), [&](const LimitKey& l) { return key == l.key; });
+    if (limit != limit_keys.end()) {
+      whole(v, key, limit->lo, limit->hi, limit->value);
+    } else if (key == "listen" || key == "data_dir" || key == "tokens_file") {
       if (!v.IsScalar()) {
         errors.push_back(absl::StrCat(v.loc.ToString(), ": ", key, ": expected text, got ", v.Describe()));
         continue;

@@ -7,6 +7,7 @@
 #include <string>
 
 #include "absl/status/statusor.h"
+#include "configs/reader/spec.h"
 #include "server/job_store.h"
 #include "server/launcher.h"
 
@@ -20,6 +21,17 @@ struct GraftdConfig {
   int max_attempts = 3;                    // leases per job before it fails
   int64_t max_config_bytes = 1 << 20;      // larger submissions are refused
   int64_t max_sweep_jobs = 1000;           // larger sweeps are refused before anything is stored
+  // The other limits (CoordinatorOptions documents each; configs/graftd.yaml lists them with
+  // their defaults): what one job may ask for, and what one request or one token may take.
+  config::SpecLimits spec_limits;
+  int64_t max_artifact_bytes = int64_t{4} << 30;
+  int64_t max_points_per_report = 1000;
+  int64_t max_name_bytes = 256;
+  int64_t max_label_bytes = 256;
+  int64_t max_labels_per_job = 32;
+  int64_t max_reason_bytes = 16384;
+  int64_t max_watches_per_user = 64;
+  int64_t max_requests_in_flight_per_token = 512;
   Durability durability = Durability::kNormal;  // normal: survives a killed process; full: power loss
   bool allow_plaintext = false;            // needed for a non-loopback listen address without TLS
   std::string port_file;                   // if set, the bound port is written here once listening

@@ -79,6 +79,9 @@ struct WorkerRecord {
   std::string slurm_job_id, slurm_array_job_id, slurm_array_task_id;
   int64_t jobs_finished = 0;      // jobs it ended: succeeded, failed, or stopped after a cancel
   int64_t left_ms = 0;            // when it said it was leaving; 0: it has not
+  // The name of the worker token that registered it: only that token may act as this worker.
+  // "" for a worker registered before schema version 4 (it must register again).
+  std::string token_name;
 };
 
 struct JobFilter {

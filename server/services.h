@@ -1,8 +1,10 @@
 // The gRPC services of graft.v1 over a Coordinator, with the callback API: streaming calls and
 // the lease long poll hold no thread while they wait. Every call is authorised first, in
-// Authorize() (server/auth.h). Thread-safety: the services may be called concurrently; they
-// keep no state of their own beyond the coordinator and the token table they point to, both
-// of which must outlive them.
+// Authorize() (server/auth.h), against the token table current at that moment, and counted
+// against its token's calls in flight (and a watch against its user's open watches). When the
+// token table is reloaded, open watch streams whose token it no longer admits end with
+// UNAUTHENTICATED. Thread-safety: the services may be called concurrently; the coordinator and
+// the LiveTokens they point to must outlive them.
 #ifndef GRAFT_SERVER_SERVICES_H_
 #define GRAFT_SERVER_SERVICES_H_
 
@@ -14,8 +16,8 @@
 
 namespace graft::server {
 
-std::unique_ptr<v1::Jobs::CallbackService> CreateJobsService(Coordinator* coordinator, const TokenTable* tokens);
-std::unique_ptr<v1::Workers::CallbackService> CreateWorkersService(Coordinator* coordinator, const TokenTable* tokens);
+std::unique_ptr<v1::Jobs::CallbackService> CreateJobsService(Coordinator* coordinator, LiveTokens* tokens);
+std::unique_ptr<v1::Workers::CallbackService> CreateWorkersService(Coordinator* coordinator, LiveTokens* tokens);
 
 // absl::Status -> grpc::Status with the same code and message.
 grpc::Status ToGrpc(const absl::Status& status);

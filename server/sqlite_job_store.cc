@@ -94,6 +94,11 @@ ALTER TABLE workers ADD COLUMN left_ms             INTEGER NOT NULL DEFAULT 0;
 ALTER TABLE jobs ADD COLUMN cancel_reason TEXT NOT NULL DEFAULT '';
 UPDATE jobs SET cancel_reason = error, error = '' WHERE state = 5;
 )sql",
+    // Version 4: the worker token that registered a worker, so that no other token can act as it.
+    // Workers registered before have '' and must register again.
+    R"sql(
+ALTER TABLE workers ADD COLUMN token_name TEXT NOT NULL DEFAULT '';
+)sql",
 };
 
 constexpr int kBusyTimeoutMs = 5000;
@@ -845,8 +850,8 @@ absl::Status SqliteJobStore::PutWorker(const WorkerRecord& worker) {
   std::lock_guard<std::mutex> lock(mu_);
   absl::StatusOr<Statement> stmt = Prepare(
       "INSERT OR REPLACE INTO workers (id, host, cores, threads, version, registered_ms, last_seen_ms, "
-      "slurm_job_id, slurm_array_job_id, slurm_array_task_id, jobs_finished, left_ms) "
-      "VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12)",
+      "slurm_job_id, slurm_array_job_id, slurm_array_task_id, jobs_finished, left_ms, token_name) "
+      "VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13)",
       "PutWorker");
   if (!stmt.ok()) return stmt.status();
   stmt->BindText(1, worker.id);
@@ -861,13 +866,14 @@ absl::Status SqliteJobStore::PutWorker(const WorkerRecord& worker) {
   stmt->BindText(10, worker.slurm_array_task_id);
   stmt->BindInt(11, worker.jobs_finished);
   stmt->BindInt(12, worker.left_ms);
+  stmt->BindText(13, worker.token_name);
   return stmt->Run();
 }
 
 namespace {
 constexpr char kWorkerColumns[] =
     "id, host, cores, threads, version, registered_ms, last_seen_ms, slurm_job_id, slurm_array_job_id, "
-    "slurm_array_task_id, jobs_finished, left_ms";
+    "slurm_array_task_id, jobs_finished, left_ms, token_name";
 WorkerRecord ReadWorker(Statement& stmt) {
   WorkerRecord w;
   w.id = stmt.Text(0);
@@ -882,6 +888,7 @@ WorkerRecord ReadWorker(Statement& stmt) {
   w.slurm_array_task_id = stmt.Text(9);
   w.jobs_finished = stmt.Int(10);
   w.left_ms = stmt.Int(11);
+  w.token_name = stmt.Text(12);
   return w;
 }
 }  // namespace

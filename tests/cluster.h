@@ -23,11 +23,14 @@
 
 namespace graft::testing {
 
-// Tokens of the test cluster: two users, an admin and a worker.
+// Tokens of the test cluster: two users, an admin, two worker tokens (node1, node2), and a user
+// token that was revoked (carol).
 inline constexpr char kAlice[] = "alice-token-3f9c";
 inline constexpr char kBob[] = "bob-token-77a1";
 inline constexpr char kRoot[] = "root-token-c0de";
 inline constexpr char kWorker[] = "worker-token-5e5e";
+inline constexpr char kWorker2[] = "worker-token-2b2b";
+inline constexpr char kRevoked[] = "carol-token-dead";
 
 // TLS for a test cluster. The directory holds scripts/make-certs.sh's files: ca.pem,
 // server.pem, server.key (for localhost, 127.0.0.1 and ::1), client.pem, client.key.
@@ -56,9 +59,12 @@ class Cluster {
       : lease_seconds_(lease_seconds), extra_flags_(std::move(extra_flags)), tls_(std::move(tls)) {
     std::ostringstream tokens;
     for (auto [token, name, role] : {std::tuple{kAlice, "alice", "user"}, std::tuple{kBob, "bob", "user"},
-                                     std::tuple{kRoot, "root", "admin"}, std::tuple{kWorker, "node1", "worker"}}) {
+                                     std::tuple{kRoot, "root", "admin"}, std::tuple{kWorker, "node1", "worker"},
+                                     std::tuple{kWorker2, "node2", "worker"}}) {
       tokens << "- {name: " << name << ", role: " << role << ", sha256: " << graft::Sha256Hex(token) << "}\n";
     }
+    tokens << "- {name: carol, role: user, sha256: " << graft::Sha256Hex(kRevoked)
+           << ", created: \"2026-01-01T00:00:00Z\", revoked: \"2026-01-02T00:00:00Z\"}\n";
     WriteFile(dir_.path() + "/tokens.yaml", tokens.str());
     WriteFile(dir_.path() + "/worker.token", std::string(kWorker) + "\n");
     StartCoordinator();
@@ -93,6 +99,8 @@ class Cluster {
     jobs_ = v1::Jobs::NewStub(channel_);
     workers_ = v1::Workers::NewStub(channel_);
   }
+  // Sends `signal` to graftd (e.g. SIGHUP: reread the tokens file); false if it is gone.
+  bool SignalCoordinator(int signal) { return graftd_->Signal(signal); }
   void KillCoordinator() {
     graftd_->Signal(SIGKILL);
     graftd_->Wait(10000);

@@ -741,10 +741,11 @@ TEST_F(SqliteJobStore, MigrationMovesOldCancelReasonsOutOfError) {
     failed_id = *store->InsertJob(failed);
     queued_id = *store->InsertJob(QueuedJob("queued"));
   }
-  ASSERT_EQ(CurrentSchemaVersion(), 3) << "this test makes a version-2 file; a later step needs its own test";
+  ASSERT_EQ(CurrentSchemaVersion(), 4) << "this test makes a version-2 file; a later step needs its own test";
   sqlite3* db = nullptr;
   ASSERT_EQ(sqlite3_open(path.c_str(), &db), SQLITE_OK);
   const std::string to_v2 =
+      "ALTER TABLE workers DROP COLUMN token_name;"
       "ALTER TABLE jobs DROP COLUMN cancel_reason;"
       "UPDATE jobs SET error = 'cancelled by mira: enough; the worker stopped at step 40' WHERE name = 'cancelled';"
       "UPDATE jobs SET error = 'the loss became nan at step 3' WHERE name = 'failed';"
@@ -754,7 +755,7 @@ TEST_F(SqliteJobStore, MigrationMovesOldCancelReasonsOutOfError) {
 
   std::unique_ptr<JobStore> store = OpenOrDie(path);
   ASSERT_NE(store, nullptr);
-  EXPECT_EQ(RawQuery(path, "PRAGMA user_version"), "3");
+  EXPECT_EQ(RawQuery(path, "PRAGMA user_version"), "4");
   absl::StatusOr<JobRecord> cancelled = store->GetJob(cancelled_id);
   ASSERT_OK(cancelled);
   EXPECT_EQ(cancelled->cancel_reason, "cancelled by mira: enough; the worker stopped at step 40");
@@ -767,6 +768,48 @@ TEST_F(SqliteJobStore, MigrationMovesOldCancelReasonsOutOfError) {
   ASSERT_OK(queued);
   EXPECT_EQ(queued->cancel_reason, "");
   EXPECT_EQ(queued->name, "queued");
+}
+
+// Step 4 records the worker token that registered each worker. A version-3 file (the column
+// dropped) with a worker migrates to token_name '' (such a worker must register again) and keeps
+// the rest of the row; a worker stored afterwards keeps its token name. Catches a step that is
+// missing (the column would not exist: PutWorker fails) or a read that drops the name.
+TEST_F(SqliteJobStore, MigrationGivesOldWorkersNoTokenName) {
+  ScopedTempDir dir;
+  const std::string path = dir.path() + "/jobs.db";
+  {
+    std::unique_ptr<JobStore> store = OpenOrDie(path);
+    ASSERT_NE(store, nullptr);
+    WorkerRecord w;
+    w.id = "w-1-old";
+    w.host = "old";
+    w.token_name = "node1";
+    ASSERT_OK(store->PutWorker(w));
+  }
+  ASSERT_EQ(CurrentSchemaVersion(), 4) << "this test makes a version-3 file; a later step needs its own test";
+  sqlite3* db = nullptr;
+  ASSERT_EQ(sqlite3_open(path.c_str(), &db), SQLITE_OK);
+  ASSERT_EQ(sqlite3_exec(db, "ALTER TABLE workers DROP COLUMN token_name; PRAGMA user_version = 3;", nullptr, nullptr,
+                         nullptr),
+            SQLITE_OK)
+      << sqlite3_errmsg(db);
+  sqlite3_close(db);
+  std::unique_ptr<JobStore> store = OpenOrDie(path);
+  ASSERT_NE(store, nullptr);
+  EXPECT_EQ(RawQuery(path, "PRAGMA user_version"), "4");
+  auto old = store->GetWorker("w-1-old");
+  ASSERT_OK(old);
+  ASSERT_TRUE(old->has_value());
+  EXPECT_EQ((*old)->host, "old");
+  EXPECT_EQ((*old)->token_name, "");
+  WorkerRecord fresh;
+  fresh.id = "w-2-new";
+  fresh.token_name = "node2";
+  ASSERT_OK(store->PutWorker(fresh));
+  auto back = store->GetWorker("w-2-new");
+  ASSERT_OK(back);
+  ASSERT_TRUE(back->has_value());
+  EXPECT_EQ((*back)->token_name, "node2");
 }
 
 TEST_F(SqliteJobStore, RefusesNewerSchemaVersion) {

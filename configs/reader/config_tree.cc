@@ -1,5 +1,6 @@
 #include "configs/reader/config_tree.h"
 
+#include <algorithm>
 #include <cmath>
 #include <cstdio>
 #include <cstdlib>
@@ -18,7 +19,48 @@
 namespace graft::config {
 namespace {
 
-// Builds a ConfigNode tree from yaml-cpp's parse events.
+// Thrown out of yaml-cpp's parser by TreeBuilder to stop at once (nesting or expansion past the
+// bounds); the status is already recorded.
+struct StopParsing {};
+
+// The first byte that is not valid UTF-8, or a NUL: "LINE:COL: what", or "" for good text.
+// Columns count characters.
+std::string FirstBadByte(const std::string& text, int column_offset) {
+  int line = 1, column = 1;
+  const auto* p = reinterpret_cast<const unsigned char*>(text.data());
+  const size_t n = text.size();
+  for (size_t i = 0; i < n;) {
+    const unsigned char c = p[i];
+    auto at = [&] { return absl::StrCat(line, ":", column + column_offset, ": "); };
+    if (c == 0) return absl::StrCat(at(), "a NUL byte; a config is UTF-8 text");
+    size_t len = c < 0x80 ? 1 : (c >> 5) == 0x6 ? 2 : (c >> 4) == 0xe ? 3 : (c >> 3) == 0x1e ? 4 : 0;
+    bool ok = len > 0 && i + len <= n;
+    for (size_t k = 1; ok && k < len; ++k) ok = (p[i + k] & 0xc0) == 0x80;
+    if (ok && len > 1) {
+      // Overlong forms, UTF-16 surrogates and code points past U+10FFFF are not UTF-8.
+      uint32_t cp = c & (0xff >> (len + 1));
+      for (size_t k = 1; k < len; ++k) cp = (cp << 6) | (p[i + k] & 0x3f);
+      const uint32_t min[] = {0, 0, 0x80, 0x800, 0x10000};
+      ok = cp >= min[len] && cp <= 0x10ffff && !(cp >= 0xd800 && cp <= 0xdfff);
+    }
+    if (!ok) {
+      char hex[8];
+      std::snprintf(hex, sizeof(hex), "0x%02X", c);
+      return absl::StrCat(at(), "byte ", hex, " is not valid UTF-8; a config is UTF-8 text");
+    }
+    if (c == '\n') {
+      ++line;
+      column = 1;
+    } else {
+      ++column;
+    }
+    i += len;
+  }
+  return "";
+}
+
+// Builds a ConfigNode tree from yaml-cpp's parse events, within kMaxYamlNodes nodes (each alias
+// counts as the nodes it copies) and kMaxYamlDepth levels of nesting.
 class TreeBuilder : public YAML::EventHandler {
  public:
   TreeBuilder(std::string source, int column_offset)
@@ -28,10 +70,11 @@ class TreeBuilder : public YAML::EventHandler {
   void OnDocumentEnd() override {}
 
   void OnNull(const YAML::Mark& mark, YAML::anchor_t anchor) override {
+    Count(mark, 1, 1);
     ConfigNode n;
     n.kind = ConfigNode::Kind::kNull;
     n.loc = Loc(mark);
-    Add(std::move(n), anchor);
+    Add(std::move(n), anchor, Shape{1, 1});
   }
   void OnAlias(const YAML::Mark& mark, YAML::anchor_t anchor) override {
     auto it = anchors_.find(anchor);
@@ -39,9 +82,11 @@ class TreeBuilder : public YAML::EventHandler {
       Fail(mark, "alias to an unknown anchor");
       return;
     }
-    ConfigNode copy = it->second;
+    // Checked before copying: an alias bomb stops here, not after the copies are made.
+    Count(mark, it->second.shape.nodes, it->second.shape.height);
+    ConfigNode copy = it->second.node;
     copy.loc = Loc(mark);
-    Add(std::move(copy), 0);
+    Add(std::move(copy), 0, it->second.shape);
   }
   void OnScalar(const YAML::Mark& mark, const std::string& tag, YAML::anchor_t anchor,
                 const std::string& value) override {
@@ -51,6 +96,7 @@ class TreeBuilder : public YAML::EventHandler {
                               "quoted, e.g. \"!fragile\""));
       return;
     }
+    Count(mark, 1, 1);
     ConfigNode n;
     n.kind = ConfigNode::Kind::kScalar;
     n.scalar = value;
@@ -60,24 +106,26 @@ class TreeBuilder : public YAML::EventHandler {
       n.kind = ConfigNode::Kind::kNull;
       n.scalar.clear();
     }
-    Add(std::move(n), anchor);
+    Add(std::move(n), anchor, Shape{1, 1});
   }
   void OnSequenceStart(const YAML::Mark& mark, const std::string& tag, YAML::anchor_t anchor,
                        YAML::EmitterStyle::value) override {
     CheckTag(mark, tag);
+    Count(mark, 1, 1);
     ConfigNode n;
     n.kind = ConfigNode::Kind::kSequence;
     n.loc = Loc(mark);
-    stack_.push_back(Open{std::move(n), anchor, {}, false});
+    stack_.push_back(Open{std::move(n), anchor, {}, false, nodes_ - 1, 1});
   }
   void OnSequenceEnd() override { Close(); }
   void OnMapStart(const YAML::Mark& mark, const std::string& tag, YAML::anchor_t anchor,
                   YAML::EmitterStyle::value) override {
     CheckTag(mark, tag);
+    Count(mark, 1, 1);
     ConfigNode n;
     n.kind = ConfigNode::Kind::kMap;
     n.loc = Loc(mark);
-    stack_.push_back(Open{std::move(n), anchor, {}, false});
+    stack_.push_back(Open{std::move(n), anchor, {}, false, nodes_ - 1, 1});
   }
   void OnMapEnd() override { Close(); }
 
@@ -87,12 +135,40 @@ class TreeBuilder : public YAML::EventHandler {
   bool has_root() const { return has_root_; }
 
  private:
+  // A subtree's size: its nodes (with the copies its aliases made) and its height.
+  struct Shape {
+    int64_t nodes = 1;
+    int height = 1;
+  };
+  struct Anchored {
+    ConfigNode node;
+    Shape shape;
+  };
   struct Open {
     ConfigNode node;
     YAML::anchor_t anchor;
     ConfigNode pending_key;
     bool has_key;
+    int64_t nodes_before;  // nodes_ before this node was opened
+    int height;            // 1 + the tallest child so far
   };
+
+  // Counts `nodes` more nodes of a subtree `height` tall starting at the current depth; past the
+  // bounds records the error and stops the parser.
+  void Count(const YAML::Mark& mark, int64_t nodes, int height) {
+    nodes_ += nodes;
+    if (nodes_ > kMaxYamlNodes) {
+      Fail(mark, absl::StrCat("the YAML makes more than ", kMaxYamlNodes, " nodes (each alias counting the nodes it "
+                              "copies); a config holds at most ", kMaxYamlNodes, ", so this is refused (aliases "
+                              "that expand exponentially?)"));
+      throw StopParsing{};
+    }
+    if (static_cast<int64_t>(stack_.size()) + height > kMaxYamlDepth) {
+      Fail(mark, absl::StrCat("the YAML nests deeper than ", kMaxYamlDepth, " levels; a config nests at most ",
+                              kMaxYamlDepth));
+      throw StopParsing{};
+    }
+  }
 
   void CheckTag(const YAML::Mark& mark, const std::string& tag) {
     if (!tag.empty() && tag != "?" && tag != "!") {
@@ -109,8 +185,9 @@ class TreeBuilder : public YAML::EventHandler {
     if (status_.ok()) status_ = absl::InvalidArgumentError(absl::StrCat(loc.ToString(), ": ", message));
   }
 
-  void Add(ConfigNode n, YAML::anchor_t anchor) {
-    if (anchor != 0) anchors_[anchor] = n;
+  void Add(ConfigNode n, YAML::anchor_t anchor, Shape shape) {
+    if (anchor != 0) anchors_[anchor] = Anchored{n, shape};
+    if (!stack_.empty()) stack_.back().height = std::max(stack_.back().height, shape.height + 1);
     if (stack_.empty()) {
       root_ = std::move(n);
       has_root_ = true;
@@ -144,13 +221,14 @@ class TreeBuilder : public YAML::EventHandler {
   void Close() {
     Open top = std::move(stack_.back());
     stack_.pop_back();
-    Add(std::move(top.node), top.anchor);
+    Add(std::move(top.node), top.anchor, Shape{nodes_ - top.nodes_before, top.height});
   }
 
   std::string source_;
   int column_offset_;
   std::vector<Open> stack_;
-  std::map<YAML::anchor_t, ConfigNode> anchors_;
+  std::map<YAML::anchor_t, Anchored> anchors_;
+  int64_t nodes_ = 0;  // made so far, alias copies included
   ConfigNode root_;
   bool has_root_ = false;
   int documents_ = 0;
@@ -265,7 +343,12 @@ ConfigNode* ConfigNode::FindMutable(const std::string& key) {
 std::string ConfigNode::Describe() const {
   switch (kind) {
     case Kind::kNull: return "nothing";
-    case Kind::kScalar: return absl::StrCat("'", scalar, "'");
+    case Kind::kScalar: {
+      if (scalar.size() <= 80) return absl::StrCat("'", scalar, "'");
+      size_t cut = 72;  // not inside a UTF-8 sequence
+      while (cut > 0 && (static_cast<unsigned char>(scalar[cut]) & 0xc0) == 0x80) --cut;
+      return absl::StrCat("'", scalar.substr(0, cut), "...' (", scalar.size(), " bytes)");
+    }
     case Kind::kSequence: return "a list";
     case Kind::kMap: return "a map";
   }
@@ -274,6 +357,11 @@ std::string ConfigNode::Describe() const {
 
 absl::StatusOr<ConfigNode> ParseYaml(const std::string& text, const std::string& source,
                                      int column_offset) {
+  // yaml-cpp guesses UTF-16 or UTF-32 from NUL bytes and passes invalid UTF-8 through: refuse
+  // both here, where the place can still be named.
+  if (const std::string bad = FirstBadByte(text, column_offset); !bad.empty()) {
+    return absl::InvalidArgumentError(absl::StrCat(source, ":", bad));
+  }
   std::istringstream in(text);
   TreeBuilder builder(source, column_offset);
   try {
@@ -285,6 +373,8 @@ absl::StatusOr<ConfigNode> ParseYaml(const std::string& text, const std::string&
             absl::StrCat(source, ": holds more than one YAML document; one config per file"));
       }
     }
+  } catch (const StopParsing&) {
+    return builder.status();
   } catch (const YAML::Exception& e) {
     return absl::InvalidArgumentError(absl::StrCat(source, ":", e.mark.line + 1, ":",
                                                    e.mark.column + 1 + column_offset,

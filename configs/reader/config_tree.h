@@ -4,6 +4,7 @@
 #ifndef GRAFT_CONFIGS_READER_CONFIG_TREE_H_
 #define GRAFT_CONFIGS_READER_CONFIG_TREE_H_
 
+#include <cstdint>
 #include <string>
 #include <utility>
 #include <vector>
@@ -40,12 +41,19 @@ struct ConfigNode {
   // The value for `key`, or nullptr. REQUIRES: IsMap().
   const ConfigNode* Find(const std::string& key) const;
   ConfigNode* FindMutable(const std::string& key);
-  // A short description for messages: "a map", "a list", "'abc'", "nothing".
+  // A short description for messages: "a map", "a list", "'abc'", "nothing"; a scalar longer
+  // than 80 bytes is cut, with its size.
   std::string Describe() const;
 };
 
-// Parses one YAML document. Errors (syntax, duplicate keys, more than one document) come back
-// as InvalidArgument "SOURCE:LINE:COL: message". `source` names the text in locations;
+// Bounds of a parsed document: nodes (an alias counts as the nodes it copies, so aliases that
+// expand exponentially are refused before they are copied) and levels of nesting.
+inline constexpr int64_t kMaxYamlNodes = 200000;
+inline constexpr int64_t kMaxYamlDepth = 64;
+
+// Parses one YAML document. Errors (syntax, duplicate keys, more than one document, a NUL byte or
+// invalid UTF-8, more than kMaxYamlNodes nodes or kMaxYamlDepth levels) come back as
+// InvalidArgument "SOURCE:LINE:COL: message". `source` names the text in locations;
 // `column_offset` shifts the reported columns (for --set values, which start after "key=").
 absl::StatusOr<ConfigNode> ParseYaml(const std::string& text, const std::string& source,
                                      int column_offset = 0);

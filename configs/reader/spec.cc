@@ -40,6 +40,7 @@ struct Positions {
   std::vector<Location> sets;             // per intervention set
   Location interventions, held_out, hidden, root;
   Location scan_block, das, das_layer, das_dims;
+  Location algorithm, steps, das_steps;
 };
 
 // Reads typed values out of a ConfigNode tree, collecting every error with its location.
@@ -445,6 +446,7 @@ void ReadTraining(Reader& r, const ConfigNode* tr, JobSpec& spec, Positions& pos
   r.CheckKeys(*tr, "training", {"steps", "batch_size", "optimizer", "loss_weights", "interventions", "sources",
                                 "source_gradients", "threads", "checkpoint_every"});
   if (const ConfigNode* n = tr->Find("steps")) {
+    pos.steps = n->loc;
     if (auto v = r.Int(*n, "training.steps", 1, int64_t{1} << 40)) t.steps = *v;
   }
   if (const ConfigNode* n = tr->Find("batch_size")) {
@@ -608,6 +610,7 @@ void ReadDas(Reader& r, const ConfigNode* da, JobSpec& spec, Positions& pos) {
     if (auto v = r.Int(*n, "das.dims", 1, 65536)) d.dims = static_cast<int>(*v);
   }
   if (const ConfigNode* n = da->Find("steps")) {
+    pos.das_steps = n->loc;
     if (auto v = r.Int(*n, "das.steps", 1, int64_t{1} << 40)) d.steps = *v;
   }
   if (const ConfigNode* n = da->Find("lr")) {
@@ -671,6 +674,75 @@ void ValidateDas(Reader& r, const Positions& pos, const std::vector<std::vector<
 }
 
 std::string Combine(const std::vector<std::string>& errors) { return absl::StrJoin(errors, "\n"); }
+
+int64_t DeclaredSize(const causal::DomainDecl& d) {
+  switch (d.kind) {
+    case DomainKind::kSymbols: return static_cast<int64_t>(d.symbols.size());
+    case DomainKind::kRange: return d.hi >= d.lo ? d.hi - d.lo + 1 : 0;
+    case DomainKind::kBool: return 2;
+    case DomainKind::kNumbers: return 0;
+  }
+  return 0;
+}
+
+// The limits that can be checked before the model is compiled (which enumerates domains and
+// tables): variables, declared domain sizes, the input space and the step counts.
+void CheckLimitsBeforeCompiling(Reader& r, const Positions& pos, const JobSpec& spec, const SpecLimits& limits) {
+  if (static_cast<int64_t>(spec.variables.size()) > limits.max_variables) {
+    r.Error(pos.algorithm, absl::StrCat("algorithm: ", spec.variables.size(),
+                                        " variables; this coordinator accepts at most max_variables = ",
+                                        limits.max_variables));
+  }
+  long double space = 1;
+  bool space_reported = false;
+  for (size_t i = 0; i < spec.variables.size(); ++i) {
+    const VariableDecl& d = spec.variables[i];
+    if (!d.domain) continue;
+    const int64_t size = DeclaredSize(*d.domain);
+    if (size > limits.max_domain_values) {
+      r.Error(pos.var_domain[i], absl::StrCat("the domain of '", d.name, "' has ", size,
+                                              " values; this coordinator accepts at most max_domain_values = ",
+                                              limits.max_domain_values));
+    }
+    if (d.role != Role::kInput) continue;
+    space *= static_cast<long double>(std::max<int64_t>(size, 1));
+    if (!space_reported && space > static_cast<long double>(limits.max_input_space)) {
+      r.Error(pos.var_domain[i], absl::StrCat("the input space passes ", limits.max_input_space,
+                                              " combinations of input values at '", d.name,
+                                              "'; this coordinator accepts at most max_input_space = ",
+                                              limits.max_input_space));
+      space_reported = true;
+    }
+  }
+  if (spec.training.steps > limits.max_steps) {
+    r.Error(pos.steps, absl::StrCat("training.steps: ", spec.training.steps,
+                                    " steps; this coordinator accepts at most max_steps = ", limits.max_steps));
+  }
+  if (spec.das.present && spec.das.steps > limits.max_steps) {
+    r.Error(pos.das_steps, absl::StrCat("das.steps: ", spec.das.steps,
+                                        " steps; this coordinator accepts at most max_steps = ", limits.max_steps));
+  }
+}
+
+// Limits that need the compiled model: inferred domain sizes and the network's size.
+void CheckLimitsOfModel(Reader& r, const Positions& pos, const JobSpec& spec, const causal::CausalModel& model,
+                        const SpecLimits& limits) {
+  for (int v = 0; v < model.num_variables(); ++v) {
+    const int64_t size = model.variable(v).domain.size();
+    if (size > limits.max_domain_values && !spec.variables[v].domain) {
+      r.Error(pos.var_name[v], absl::StrCat("'", model.variable(v).name, "' takes ", size,
+                                            " values over its parents; this coordinator accepts at most "
+                                            "max_domain_values = ",
+                                            limits.max_domain_values, " per domain; declare a smaller domain"));
+    }
+  }
+  const int64_t parameters = NetworkParameters(spec, model);
+  if (parameters > limits.max_network_parameters) {
+    r.Error(pos.hidden, absl::StrCat("network: ", parameters,
+                                     " parameters; this coordinator accepts at most max_network_parameters = ",
+                                     limits.max_network_parameters, "; use narrower or fewer hidden layers"));
+  }
+}
 
 // Checks everything that needs the compiled model; fills the resolved parts of `job`.
 void Validate(Reader& r, const Positions& pos, ResolvedJob& job) {
@@ -848,10 +920,38 @@ void Validate(Reader& r, const Positions& pos, ResolvedJob& job) {
 
 }  // namespace
 
-absl::StatusOr<ResolvedJob> ResolveTree(const ConfigNode& root) {
+SpecLimits SpecLimits::None() {
+  SpecLimits l;
+  l.max_variables = INT64_MAX;
+  l.max_domain_values = INT64_MAX;
+  l.max_table_entries = INT64_MAX;
+  l.max_input_space = INT64_MAX;  // the model itself stops at causal::kMaxInputSpace
+  l.max_network_parameters = INT64_MAX;
+  l.max_steps = INT64_MAX;
+  return l;
+}
+
+int64_t NetworkParameters(const JobSpec& spec, const causal::CausalModel& model) {
+  // Saturating: a network this large is refused whatever the exact count.
+  long double total = 0;
+  int64_t input_values = 0;
+  for (int i : model.inputs()) input_values += model.variable(i).domain.size();
+  total += static_cast<long double>(input_values) * spec.network.embedding_dim;
+  long double in = static_cast<long double>(model.inputs().size()) * spec.network.embedding_dim;
+  for (int width : spec.network.hidden) {
+    total += in * width + width;
+    in = width;
+  }
+  const long double classes = model.output() >= 0 ? model.variable(model.output()).domain.size() : 0;
+  total += in * classes + classes;
+  return total >= static_cast<long double>(INT64_MAX) ? INT64_MAX : static_cast<int64_t>(total);
+}
+
+absl::StatusOr<ResolvedJob> ResolveTree(const ConfigNode& root, const SpecLimits& limits) {
   Reader r;
   Positions pos;
   pos.root = root.loc;
+  pos.algorithm = pos.steps = pos.das_steps = root.loc;
   ResolvedJob job;
   JobSpec& spec = job.spec;
   if (!root.IsMap()) {
@@ -880,6 +980,7 @@ absl::StatusOr<ResolvedJob> ResolveTree(const ConfigNode& root) {
   if (algo == nullptr) {
     if (root.Find("algorithm") == nullptr) r.Error(root.loc, "needs an 'algorithm' (inputs, mechanisms, output)");
   } else {
+    pos.algorithm = algo->loc;
     ReadAlgorithm(r, *algo, spec, pos);
   }
   ReadNetwork(r, r.Map(root.Find("network"), "network"), spec, pos);
@@ -889,9 +990,11 @@ absl::StatusOr<ResolvedJob> ResolveTree(const ConfigNode& root) {
   ReadScan(r, r.Map(root.Find("scan"), "scan"), spec, pos);
   ReadDas(r, r.Map(root.Find("das"), "das"), spec, pos);
   if (!r.ok()) return absl::InvalidArgumentError(Combine(r.errors()));
+  CheckLimitsBeforeCompiling(r, pos, spec, limits);
+  if (!r.ok()) return absl::InvalidArgumentError(Combine(r.errors()));
 
   causal::ModelError me;
-  auto model = causal::CausalModel::Create(spec.variables, &me);
+  auto model = causal::CausalModel::Create(spec.variables, &me, limits.max_table_entries, "max_table_entries");
   if (!model.ok()) {
     Location loc = pos.root;
     std::string message = me.message;
@@ -923,6 +1026,8 @@ absl::StatusOr<ResolvedJob> ResolveTree(const ConfigNode& root) {
     return absl::InvalidArgumentError(absl::StrCat(loc.ToString(), ": ", message));
   }
   job.model = std::move(*model);
+  CheckLimitsOfModel(r, pos, spec, *job.model, limits);
+  if (!r.ok()) return absl::InvalidArgumentError(Combine(r.errors()));
   Validate(r, pos, job);
   if (!r.ok()) return absl::InvalidArgumentError(Combine(r.errors()));
   return job;

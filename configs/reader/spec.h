@@ -120,14 +120,34 @@ struct ResolvedJob {
   uint64_t distinct_eval_triples = 0;
 };
 
+// What one job may ask for. graftd refuses a config beyond its settings (configs/graftd.yaml;
+// the defaults below are graftd's) with InvalidArgument naming the setting and its value; the
+// client's and the worker's checks use None(), the hard caps of the causal model only, since only
+// the coordinator knows its own settings.
+struct SpecLimits {
+  int64_t max_variables = 256;                 // inputs, mechanisms and the output together
+  int64_t max_domain_values = 65536;           // values in one variable's domain (declared or inferred)
+  int64_t max_table_entries = int64_t{1} << 22;  // entries of all mechanism lookup tables together
+  int64_t max_input_space = int64_t{1} << 20;  // combinations of input values (the product of the input domains)
+  int64_t max_network_parameters = 100000000;  // the network's weights and biases (embeddings included)
+  int64_t max_steps = 100000000;               // training.steps, and das.steps
+
+  // No limits beyond the causal model's own caps (causal::kMaxInputSpace, causal::kMaxParentSpace).
+  static SpecLimits None();
+};
+
+// The network's trainable parameters for `spec` with the model's domain sizes: the embedding rows
+// (every input value), each hidden layer's weights and biases, and the output layer's.
+int64_t NetworkParameters(const JobSpec& spec, const causal::CausalModel& model);
+
 // Loads, overrides (each `key.path=value`), validates and resolves a config. Every error is
 // InvalidArgument with one line per problem: "FILE:LINE:COL: message" (or "--set #N:1:COL: ...").
 // A missing file is NotFound.
 absl::StatusOr<ResolvedJob> LoadJob(const std::string& path, const std::vector<std::string>& overrides);
 absl::StatusOr<ResolvedJob> LoadJobFromText(const std::string& text, const std::string& source,
                                             const std::vector<std::string>& overrides);
-// The same from an already parsed (and overridden) tree.
-absl::StatusOr<ResolvedJob> ResolveTree(const ConfigNode& root);
+// The same from an already parsed (and overridden) tree, within `limits`.
+absl::StatusOr<ResolvedJob> ResolveTree(const ConfigNode& root, const SpecLimits& limits = SpecLimits::None());
 
 // The fully resolved spec as YAML (every field, defaults filled in); loading it gives the same
 // JobSpec. Stable: the same spec always gives the same text.

@@ -264,7 +264,7 @@ std::string ShortKey(const std::string& path, const std::set<std::string>& clash
 
 }  // namespace
 
-absl::StatusOr<SweepPlan> ExpandConfig(const ConfigNode& root, int64_t max_jobs) {
+absl::StatusOr<SweepPlan> ExpandConfig(const ConfigNode& root, int64_t max_jobs, const SpecLimits& limits) {
   SweepPlan plan;
   const ConfigNode* sweep = root.IsMap() ? root.Find("sweep") : nullptr;
   if (sweep != nullptr && sweep->IsNull()) {
@@ -276,10 +276,10 @@ absl::StatusOr<SweepPlan> ExpandConfig(const ConfigNode& root, int64_t max_jobs)
         break;
       }
     }
-    return ExpandConfig(lone, max_jobs);
+    return ExpandConfig(lone, max_jobs, limits);
   }
   if (sweep == nullptr) {
-    auto job = ResolveTree(root);
+    auto job = ResolveTree(root, limits);
     if (!job.ok()) return job.status();
     PlannedJob p;
     p.name = job->spec.name;
@@ -309,7 +309,7 @@ absl::StatusOr<SweepPlan> ExpandConfig(const ConfigNode& root, int64_t max_jobs)
   }
   if (total > max_jobs) {
     return absl::ResourceExhaustedError(absl::StrCat(sweep->loc.ToString(), ": the sweep makes more than ", max_jobs,
-                                                     " jobs, the most this coordinator accepts in one sweep; split it"));
+                                                     " jobs, the most this coordinator accepts in one sweep (max_sweep_jobs); split it"));
   }
   // Short names for keys; a last segment shared by keys that take different values gets its parent.
   std::map<std::string, std::set<std::string>> by_last;
@@ -382,7 +382,7 @@ absl::StatusOr<SweepPlan> ExpandConfig(const ConfigNode& root, int64_t max_jobs)
       name_node.quoted = true;
       absl::Status st = SetPath(tree, "name", name_node, base.loc);
       if (!st.ok()) return st;
-      auto job = ResolveTree(tree);
+      auto job = ResolveTree(tree, limits);
       if (!job.ok()) {
         std::vector<std::string> settings;
         for (const auto& [key, value] : p.varied) settings.push_back(absl::StrCat(key, "=", value));
@@ -408,14 +408,15 @@ absl::StatusOr<SweepPlan> ExpandConfig(const ConfigNode& root, int64_t max_jobs)
 }
 
 absl::StatusOr<SweepPlan> PlanFromText(const std::string& text, const std::string& source,
-                                       const std::vector<std::string>& overrides, int64_t max_jobs) {
+                                       const std::vector<std::string>& overrides, int64_t max_jobs,
+                                       const SpecLimits& limits) {
   auto tree = ParseYaml(text, source);
   if (!tree.ok()) return tree.status();
   for (size_t i = 0; i < overrides.size(); ++i) {
     absl::Status st = ApplyOverride(*tree, overrides[i], static_cast<int>(i + 1));
     if (!st.ok()) return st;
   }
-  return ExpandConfig(*tree, max_jobs);
+  return ExpandConfig(*tree, max_jobs, limits);
 }
 
 std::string SummarizePlan(const SweepPlan& plan) {

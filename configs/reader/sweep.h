@@ -40,11 +40,14 @@ inline constexpr int64_t kDefaultMaxSweepJobs = 1000;
 // location of a mistake in the sweep block, or "sweep combination K of N (k=v,...): <error>"
 // for the first combination that does not validate; ResourceExhausted when the sweep would make
 // more than `max_jobs` jobs (checked before any combination is resolved).
-absl::StatusOr<SweepPlan> ExpandConfig(const ConfigNode& root, int64_t max_jobs);
+// Every job is resolved within `limits` (spec.h).
+absl::StatusOr<SweepPlan> ExpandConfig(const ConfigNode& root, int64_t max_jobs,
+                                       const SpecLimits& limits = SpecLimits::None());
 
 // Parses text, applies overrides (`--set #N`), and expands.
 absl::StatusOr<SweepPlan> PlanFromText(const std::string& text, const std::string& source,
-                                       const std::vector<std::string>& overrides, int64_t max_jobs);
+                                       const std::vector<std::string>& overrides, int64_t max_jobs,
+                                       const SpecLimits& limits = SpecLimits::None());
 
 // A short summary of a plan for `check`: the number of jobs and their names.
 std::string SummarizePlan(const SweepPlan& plan);

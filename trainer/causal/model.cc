@@ -73,7 +73,7 @@ absl::Status Fail(ModelError* error, int variable, ModelError::Part part, int of
 }  // namespace
 
 absl::StatusOr<std::unique_ptr<CausalModel>> CausalModel::Create(
-    const std::vector<VariableDecl>& decls, ModelError* error) {
+    const std::vector<VariableDecl>& decls, ModelError* error, int64_t max_table_entries, const std::string& limit_name) {
   using Part = ModelError::Part;
   std::unique_ptr<CausalModel> m(new CausalModel());
   const int n = static_cast<int>(decls.size());
@@ -248,6 +248,7 @@ absl::StatusOr<std::unique_ptr<CausalModel>> CausalModel::Create(
                                                                                 : ValueType::kNumber;
     ctx.variables.push_back(ev);
   }
+  int64_t table_entries = 0;  // of the mechanisms compiled so far
   for (int i : m->topo_) {
     Variable& v = m->vars_[i];
     const VariableDecl& d = decls[i];
@@ -269,6 +270,14 @@ absl::StatusOr<std::unique_ptr<CausalModel>> CausalModel::Create(
                     absl::StrCat("'", d.name, "' has more than ", kMaxParentSpace,
                                  " combinations of parent values; split it into smaller mechanisms"));
       }
+    }
+    table_entries += space;
+    if (table_entries > max_table_entries) {
+      return Fail(error, i, Part::kExpression, 0,
+                  absl::StrCat("the mechanisms' lookup tables reach ", table_entries, " entries at '", d.name,
+                               "' (", space, " combinations of its parents' values); this coordinator accepts at most ",
+                               limit_name.empty() ? "" : limit_name + " = ", max_table_entries,
+                               " entries in all; use smaller domains or fewer parents"));
     }
     const bool symbolic = expr.result_type() == ValueType::kSymbol;
     const bool declared = d.domain.has_value();

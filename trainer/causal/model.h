@@ -76,8 +76,12 @@ class CausalModel {
  public:
   // Builds and compiles the model. On failure returns InvalidArgument and, if `error` is not
   // null, fills it with where the problem is. Variables keep the declaration order.
+  // `max_table_entries` bounds the sum of all mechanisms' lookup tables (each is also at most
+  // kMaxParentSpace); compiling stops at the mechanism that would pass it, before evaluating it,
+  // with a message naming `limit_name` and the limit.
   static absl::StatusOr<std::unique_ptr<CausalModel>> Create(const std::vector<VariableDecl>& decls,
-                                                             ModelError* error);
+                                                             ModelError* error, int64_t max_table_entries = INT64_MAX,
+                                                             const std::string& limit_name = "");
 
   int num_variables() const { return static_cast<int>(vars_.size()); }
   const Variable& variable(int i) const { return vars_[i]; }
