@@ -10,6 +10,7 @@
 
 #include <atomic>
 #include <chrono>
+#include <filesystem>
 #include <fstream>
 #include <map>
 #include <memory>
@@ -546,6 +547,69 @@ TEST(Fault, ARewindReachesAWatcher) {
     EXPECT_EQ(p.metrics_json(), stored[i].metrics_json()) << "step " << step;
     ++i;
   }
+}
+
+// A tmpfs of `kib` KiB mounted at `dir` (created), unmounted on destruction. Mounting needs root
+// (CAP_SYS_ADMIN), as in CI; elsewhere the test fails saying so.
+class ScopedTmpfs {
+ public:
+  ScopedTmpfs(const std::string& dir, int kib) : dir_(dir) {
+    std::filesystem::create_directories(dir);
+    auto r = RunCommand("mount -t tmpfs -o size=" + std::to_string(kib) + "k tmpfs " + dir);
+    mounted_ = r.exit_code == 0;
+    EXPECT_TRUE(mounted_) << "cannot mount a tmpfs at " << dir << " (this test needs root): " << r.output;
+  }
+  ~ScopedTmpfs() {
+    if (mounted_) RunCommand("umount " + dir_);
+  }
+  bool mounted() const { return mounted_; }
+
+ private:
+  std::string dir_;
+  bool mounted_ = false;
+};
+
+// A worker whose own work dir is full cannot write its checkpoint: it hands the job back with the
+// reason (not counted as an attempt, the job does not fail), deregisters and exits 1 saying what
+// to do; another worker with room trains the job to the end.
+TEST(Fault, AWorkerWhoseWorkDirFillsHandsItsJobBack) {
+  Cluster c;
+  const std::string small = c.dir() + "/small";
+  ScopedTmpfs tmpfs(small, 512);
+  ASSERT_TRUE(tmpfs.mounted());
+  {  // First prove that a write really fails there (root ignores permission bits, not quotas).
+    std::ofstream probe(small + "/probe", std::ios::binary);
+    const std::string mib(1 << 20, 'x');
+    probe << mib;
+    probe.flush();
+    EXPECT_FALSE(probe.good()) << "a 1 MiB write fit in the 512 KiB tmpfs";
+  }
+  std::filesystem::remove(small + "/probe");
+  // Width 256: a checkpoint of about 1.7 MB, more than the tmpfs holds.
+  const std::string id = c.Submit(kAlice, "parcel-routing",
+                                  {"training.steps=300", "evaluation.every=50", "training.checkpoint_every=100",
+                                   "evaluation.triples=256", "network.hidden=[256,256,256]"});
+  std::vector<std::string> argv = {BinaryDir() + "/bin/graft-worker", "serve", "--server", c.address(),
+                                   "--token-file", c.dir() + "/worker.token", "--work-dir", small};
+  ScopedProcess w1(argv, c.dir() + "/w1.log");
+  EXPECT_EQ(w1.Wait(180000), 1) << ReadFile(w1.log_path());
+  const std::string log = ReadFile(w1.log_path());
+  EXPECT_NE(log.find(id + ": the worker's work dir cannot be written: "), std::string::npos) << log;
+  EXPECT_NE(log.find("bytes free in " + small), std::string::npos) << log;
+  EXPECT_NE(log.find("graft-worker: stopping: the work dir " + small + " cannot be written"), std::string::npos)
+      << log;
+  v1::Job job = c.Get(id);
+  EXPECT_EQ(job.state(), v1::JOB_STATE_QUEUED) << job.error();
+  EXPECT_EQ(job.error(), "");
+  EXPECT_EQ(job.attempt(), 1);
+  EXPECT_EQ(job.max_attempts(), 4);  // 3 + the hand-back
+  EXPECT_NE(c.Log().find("handed back by " + RegisteredId(w1.log_path()) + " (the worker's work dir cannot be written"),
+            std::string::npos)
+      << c.Log();
+  // The worker left the fleet; one with room finishes the job.
+  auto w2 = c.StartWorker("w2");
+  ASSERT_TRUE(c.WaitState(id, v1::JOB_STATE_SUCCEEDED, 180000)) << c.Log() << ReadFile(w2->log_path());
+  EXPECT_EQ(c.Metrics(id).size(), 7u);
 }
 
 }  // namespace

@@ -377,15 +377,16 @@ absl::Status Run::SaveCheckpoint(int64_t step) {
   for (const auto& l : metric_lines_) lines += l + "\n";
   archive.write("metric_lines", c10::IValue(lines));
   const fs::path path = fs::path(options_.out_dir) / "checkpoint.pt";
-  const fs::path tmp = path.string() + ".tmp";
+  // Serialised in memory and written by WriteText (checked, then renamed): LibTorch's file writer
+  // throws from its destructor when the disk is full, which ends the process.
+  std::ostringstream bytes;
   try {
-    archive.save_to(tmp.string());
+    archive.save_to(bytes);
   } catch (const c10::Error& e) {
-    return absl::UnavailableError(absl::StrCat(tmp.string(), ": cannot write checkpoint: ", e.what_without_backtrace()));
+    return absl::InternalError(absl::StrCat("cannot serialise the checkpoint: ", e.what_without_backtrace()));
   }
-  std::error_code ec;
-  fs::rename(tmp, path, ec);
-  if (ec) return absl::UnavailableError(absl::StrCat(path.string(), ": ", ec.message()));
+  absl::Status st = WriteText(path, bytes.str());
+  if (!st.ok()) return absl::UnavailableError(absl::StrCat("cannot write the checkpoint: ", st.message()));
   return absl::OkStatus();
 }
 
@@ -609,15 +610,22 @@ absl::StatusOr<RunOutcome> Run::Execute() {
   std::ofstream metrics_out(out / "metrics.jsonl", std::ios::app);
   if (!metrics_out) return absl::UnavailableError(absl::StrCat((out / "metrics.jsonl").string(), ": cannot write"));
 
-  auto emit = [&](int64_t s) {
+  // Fails when the line cannot be written (a full disk): metrics.jsonl never silently loses one.
+  auto emit = [&](int64_t s) -> absl::Status {
     last_eval_ = Evaluate(s);
     const std::string line = last_eval_.dump();
     metrics_out << line << "\n" << std::flush;
+    if (!metrics_out) {
+      return absl::UnavailableError(
+          absl::StrCat((out / "metrics.jsonl").string(), ": cannot write the evaluation at step ", s));
+    }
     metric_lines_.push_back(line);
     if (options_.on_evaluation) options_.on_evaluation(s, line);
+    return absl::OkStatus();
   };
   if (step == 0) {
-    emit(0);
+    st = emit(0);
+    if (!st.ok()) return st;
     step0_eval_ = last_eval_;
   }
   int64_t last_checkpoint = step;
@@ -647,7 +655,10 @@ absl::StatusOr<RunOutcome> Run::Execute() {
     loss_task_sum_ += task_loss;
     loss_iit_sum_ += iit_loss;
     ++loss_count_;
-    if (step % spec_.evaluation.every == 0 || step == t.steps) emit(step);
+    if (step % spec_.evaluation.every == 0 || step == t.steps) {
+      st = emit(step);
+      if (!st.ok()) return st;
+    }
     if (step % t.checkpoint_every == 0 || step == t.steps || step == options_.stop_after_step) {
       st = SaveCheckpoint(step);
       if (!st.ok()) return st;

@@ -1,5 +1,6 @@
 #include "trainer/worker/serve.h"
 
+#include <sys/statvfs.h>
 #include <unistd.h>
 
 #include <algorithm>
@@ -29,6 +30,14 @@ namespace {
 
 namespace fs = std::filesystem;
 using Clock = std::chrono::steady_clock;
+
+// " (N bytes free in DIR)", for messages about a directory that cannot be written.
+std::string FreeSpace(const std::string& dir) {
+  struct statvfs st;
+  if (statvfs(dir.c_str(), &st) != 0) return "";
+  const unsigned long long free_bytes = static_cast<unsigned long long>(st.f_bavail) * st.f_frsize;
+  return absl::StrCat(" (", free_bytes, " bytes free in ", dir, ")");
+}
 
 bool Retryable(const grpc::Status& s) {
   return s.error_code() == grpc::StatusCode::UNAVAILABLE || s.error_code() == grpc::StatusCode::DEADLINE_EXCEEDED ||
@@ -103,6 +112,9 @@ class JobRun {
       : link_(link), args_(args), worker_id_(std::move(worker_id)), lease_(lease), process_stop_(process_stop), err_(err) {}
 
   void Execute();
+  // True when the job was handed back because this worker's work dir cannot be written (a full
+  // or read-only disk): the worker should stop rather than lease work it cannot do.
+  bool work_dir_failed() const { return work_dir_failed_; }
 
  private:
   // Sends pending points and progress; returns false when the coordinator could not be reached.
@@ -130,6 +142,7 @@ class JobRun {
   std::atomic<bool> cancelled_{false};  // the coordinator said stop
   std::atomic<bool> superseded_{false}; // this attempt is no longer current
   std::atomic<bool> reporter_done_{false};
+  bool work_dir_failed_ = false;
   std::mutex report_mu_;                // one Report in flight at a time
   std::condition_variable wake_;
 };
@@ -237,6 +250,11 @@ grpc::Status JobRun::FetchCheckpoint(const std::string& path) {
         out.close();
         grpc::Status s = reader->Finish();
         if (!s.ok()) return s;
+        if (!out) {  // ABORTED: not retried, and read as this worker's disk below
+          return grpc::Status(grpc::StatusCode::ABORTED,
+                              absl::StrCat(path, ": cannot write the fetched checkpoint",
+                                           FreeSpace(fs::path(path).parent_path().string())));
+        }
         int64_t bytes = 0;
         if (Sha256File(path, &bytes) != sha) return grpc::Status(grpc::StatusCode::DATA_LOSS, "checkpoint checksum mismatch");
         return grpc::Status::OK;
@@ -302,8 +320,11 @@ void JobRun::Execute() {
     if (!s.ok()) {
       err_ << "graft-worker: " << lease_.job_id() << ": cannot fetch the checkpoint (" << s.error_message()
            << "); handing the job back\n";
+      work_dir_failed_ = s.error_code() == grpc::StatusCode::ABORTED;
       v1::FinishJobRequest r;
-      r.set_handed_back_reason("checkpoint fetch failed: " + s.error_message());
+      r.set_handed_back_reason(work_dir_failed_
+                                   ? "the worker's work dir cannot be written: " + s.error_message()
+                                   : "checkpoint fetch failed: " + s.error_message());
       FinishWith(r);
       return;
     }
@@ -349,7 +370,15 @@ void JobRun::Execute() {
   }
   FlushPoints(120000);
   v1::FinishJobRequest r;
-  if (!outcome.ok()) {
+  if (!outcome.ok() && absl::IsUnavailable(outcome.status())) {
+    // The trainer could not write its run directory (a full or read-only disk here): not the
+    // job's fault, so it goes back to the queue for a worker with room.
+    work_dir_failed_ = true;
+    const std::string why = absl::StrCat("the worker's work dir cannot be written: ", outcome.status().message(),
+                                         FreeSpace(args_.work_dir));
+    err_ << "graft-worker: " << lease_.job_id() << ": " << why << "; handing the job back\n";
+    r.set_handed_back_reason(why);
+  } else if (!outcome.ok()) {
     r.set_failed_reason(std::string(outcome.status().message()));
   } else if (!analysed.ok()) {
     r.set_failed_reason(std::string(analysed.message()));
@@ -511,6 +540,12 @@ int ServeCommand(const ServeArgs& args_in, const std::atomic<bool>* stop, std::o
     if (!lease.has_job()) continue;
     JobRun run(link, args, worker_id, lease, stop, err);
     run.Execute();
+    if (run.work_dir_failed()) {
+      err << "graft-worker: stopping: the work dir " << args.work_dir
+          << " cannot be written; free space there (or give another --work-dir) and start the worker again\n";
+      deregister("its work dir cannot be written");
+      return kExitFailure;
+    }
     idle_since = Clock::now();
   }
   deregister("stopped by a signal");
