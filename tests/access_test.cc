@@ -6,10 +6,13 @@
 #include <signal.h>
 #include <sys/stat.h>
 
+#include <atomic>
 #include <chrono>
 #include <filesystem>
+#include <memory>
 #include <string>
 #include <thread>
+#include <tuple>
 #include <vector>
 
 #include <grpcpp/grpcpp.h>
@@ -19,6 +22,7 @@
 #include "graft/v1/graft.grpc.pb.h"
 #include "gtest/gtest.h"
 #include "proto/sha256.h"
+#include "server/graftd_config.h"
 #include "tests/cluster.h"
 #include "tests/test_util.h"
 
@@ -246,6 +250,309 @@ TEST(Artifacts, NamesWithPathsAreRefused) {
   }
   EXPECT_FALSE(std::filesystem::exists(c.dir() + "/data/artifacts/x"));
   EXPECT_FALSE(std::filesystem::exists(c.dir() + "/data/x"));
+}
+
+// A cluster whose graftd reads `settings` (a graftd.yaml) as --config.
+struct LimitedCluster {
+  explicit LimitedCluster(const std::string& settings) {
+    WriteFile(dir.path() + "/graftd.yaml", settings);
+    cluster = std::make_unique<Cluster>(30, std::vector<std::string>{"--config", dir.path() + "/graftd.yaml"});
+  }
+  ScopedTempDir dir;
+  std::unique_ptr<Cluster> cluster;
+};
+
+grpc::Status SubmitText(Cluster& c, const std::string& token, const std::string& text,
+                        const std::vector<std::string>& sets = {},
+                        const std::vector<std::pair<std::string, std::string>>& labels = {},
+                        const std::string& source = "parcel.yaml") {
+  v1::SubmitJobRequest r;
+  r.set_config_yaml(text);
+  r.set_source_name(source);
+  for (const auto& s : sets) r.add_overrides(s);
+  for (const auto& [k, v] : labels) (*r.mutable_labels())[k] = v;
+  v1::SubmitJobResponse o;
+  return c.jobs().SubmitJob(c.Ctx(token).get(), r, &o);
+}
+
+#define EXPECT_REFUSED(status, code, text)                                              \
+  do {                                                                                  \
+    const grpc::Status _s = (status);                                                   \
+    EXPECT_EQ(_s.error_code(), grpc::StatusCode::code) << _s.error_message();           \
+    EXPECT_NE(_s.error_message().find(text), std::string::npos) << _s.error_message();  \
+  } while (0)
+
+// The limits of configs/graftd.yaml, each set low in a graftd.yaml and exceeded once: every
+// refusal is INVALID_ARGUMENT or RESOURCE_EXHAUSTED and names the setting and its value, and
+// nothing is stored. Catches a setting that is read but not passed on, or not checked.
+TEST(Limits, EachSettingIsRefusedWithItsNameAndValue) {
+  LimitedCluster lc(
+      "max_config_bytes: 2048\nmax_sweep_jobs: 2\nmax_variables: 6\nmax_domain_values: 5\nmax_input_space: 100\n"
+      "max_steps: 1000\nmax_labels_per_job: 2\nmax_label_bytes: 16\nmax_name_bytes: 16\nmax_reason_bytes: 64\n"
+      "max_points_per_report: 2\nmax_artifact_bytes: 1024\n");
+  Cluster& c = *lc.cluster;
+  const std::string parcel = ReadFile(SourceDir() + "/configs/parcel-routing.yaml");
+  EXPECT_REFUSED(SubmitText(c, kAlice, parcel + "#" + std::string(1000, 'x') + "\n"), RESOURCE_EXHAUSTED,
+                 "bytes; this coordinator accepts at most max_config_bytes = 2048");
+  EXPECT_REFUSED(SubmitText(c, kAlice, parcel, {"name=" + std::string(1000, 'n')}), RESOURCE_EXHAUSTED,
+                 "the config (with its overrides) is");
+  EXPECT_REFUSED(SubmitText(c, kAlice, ReadFile(SourceDir() + "/configs/parcel-routing-sweep.yaml")), RESOURCE_EXHAUSTED,
+                 "the sweep makes more than 2 jobs, the most this coordinator accepts in one sweep (max_sweep_jobs)");
+  // The job limits all at once: every one that is passed is a line of its own.
+  grpc::Status spec = SubmitText(c, kAlice, parcel);
+  EXPECT_EQ(spec.error_code(), grpc::StatusCode::INVALID_ARGUMENT);
+  for (const char* line : {"parcel.yaml:7:3: algorithm: 7 variables; this coordinator accepts at most "
+                           "max_variables = 6",
+                           "parcel.yaml:8:14: the domain of 'origin' has 6 values; this coordinator accepts at "
+                           "most max_domain_values = 5",
+                           "at 'weight'; this coordinator accepts at most max_input_space = 100",
+                           "parcel.yaml:26:10: training.steps: 2000 steps; this coordinator accepts at most "
+                           "max_steps = 1000"}) {
+    EXPECT_NE(spec.error_message().find(line), std::string::npos) << line << "\n" << spec.error_message();
+  }
+  EXPECT_REFUSED(SubmitText(c, kAlice, parcel, {}, {{"a", "1"}, {"b", "2"}, {"c", "3"}}), INVALID_ARGUMENT,
+                 "3 labels; this coordinator accepts at most max_labels_per_job = 2 per job");
+  EXPECT_REFUSED(SubmitText(c, kAlice, parcel, {}, {{"team", std::string(17, 'v')}}), INVALID_ARGUMENT,
+                 "the value of label 'team' is 17 bytes; this coordinator accepts at most max_label_bytes = 16");
+  EXPECT_REFUSED(SubmitText(c, kAlice, parcel, {}, {{std::string(17, 'k'), "v"}}), INVALID_ARGUMENT,
+                 "a label key is 17 bytes; this coordinator accepts at most max_label_bytes = 16");
+  EXPECT_REFUSED(SubmitText(c, kAlice, parcel, {}, {}, "a-very-long-name.yaml"), INVALID_ARGUMENT,
+                 "source_name is 21 bytes; this coordinator accepts at most max_name_bytes = 16");
+  {
+    v1::CancelJobRequest r;
+    r.set_job_id("j-1");
+    r.set_reason(std::string(65, 'r'));
+    v1::Job o;
+    EXPECT_REFUSED(c.jobs().CancelJob(c.Ctx(kAlice).get(), r, &o), INVALID_ARGUMENT,
+                   "the reason is 65 bytes; this coordinator accepts at most max_reason_bytes = 64");
+  }
+  // The worker side.
+  {
+    v1::RegisterWorkerRequest r;
+    r.set_host(std::string(17, 'h'));
+    v1::RegisterWorkerResponse o;
+    EXPECT_REFUSED(c.workers().RegisterWorker(c.Ctx(kWorker).get(), r, &o), INVALID_ARGUMENT,
+                   "host is 17 bytes; this coordinator accepts at most max_name_bytes = 16");
+  }
+  v1::RegisterWorkerRequest reg;
+  reg.set_host("w");
+  v1::RegisterWorkerResponse me;
+  ASSERT_TRUE(c.workers().RegisterWorker(c.Ctx(kWorker).get(), reg, &me).ok());
+  {
+    v1::ReportRequest r;
+    r.set_worker_id(me.worker_id());
+    r.set_job_id("j-1");
+    for (int i = 0; i < 3; ++i) r.add_points()->set_step(i);
+    v1::ReportResponse o;
+    EXPECT_REFUSED(c.workers().Report(c.Ctx(kWorker).get(), r, &o), INVALID_ARGUMENT,
+                   "3 points in one report; this coordinator accepts at most max_points_per_report = 2");
+  }
+  {
+    v1::UploadArtifactResponse o;
+    auto ctx = c.Ctx(kWorker);
+    auto wr = c.workers().UploadArtifact(ctx.get(), &o);
+    v1::UploadArtifactRequest r;
+    auto* h = r.mutable_header();
+    h->set_worker_id(me.worker_id());
+    h->set_job_id("j-1");
+    h->set_name("weights.pt");
+    h->set_total_bytes(1025);
+    h->set_sha256(std::string(64, '0'));
+    wr->Write(r);
+    wr->WritesDone();
+    EXPECT_REFUSED(wr->Finish(), INVALID_ARGUMENT,
+                   "the artifact weights.pt is 1025 bytes; this coordinator accepts at most max_artifact_bytes = 1024");
+  }
+  {
+    v1::FinishJobRequest r;
+    r.set_worker_id(me.worker_id());
+    r.set_job_id("j-1");
+    r.set_failed_reason(std::string(100, 'f'));
+    v1::FinishJobResponse o;
+    EXPECT_REFUSED(c.workers().FinishJob(c.Ctx(kWorker).get(), r, &o), INVALID_ARGUMENT,
+                   "the reason is 100 bytes; this coordinator accepts at most max_reason_bytes = 64");
+  }
+  {
+    v1::DeregisterWorkerRequest r;
+    r.set_worker_id(me.worker_id());
+    r.set_reason(std::string(65, 'd'));
+    v1::DeregisterWorkerResponse o;
+    EXPECT_REFUSED(c.workers().DeregisterWorker(c.Ctx(kWorker).get(), r, &o), INVALID_ARGUMENT,
+                   "max_reason_bytes = 64");
+  }
+  // Nothing was stored.
+  v1::ListJobsRequest lr;
+  v1::ListJobsResponse listed;
+  ASSERT_TRUE(c.jobs().ListJobs(c.Ctx(testing::kRoot).get(), lr, &listed).ok());
+  EXPECT_EQ(listed.jobs_size(), 0);
+  // A bad value of a setting stops graftd with its place (exit 2).
+  WriteFile(lc.dir.path() + "/bad.yaml", "max_watches_per_user: 0\n");
+  auto bad = RunCommand(BinaryDir() + "/bin/graftd --config " + lc.dir.path() + "/bad.yaml --tokens-file " + c.dir() +
+                        "/tokens.yaml --listen 127.0.0.1:0 --data-dir " + lc.dir.path() + "/data");
+  EXPECT_EQ(bad.exit_code, 2) << bad.output;
+  EXPECT_NE(bad.output.find("bad.yaml:1:23: max_watches_per_user: expected a whole number in [1, 100000], got '0'"),
+            std::string::npos)
+      << bad.output;
+}
+
+// max_table_entries reaches the mechanism compiler: parcel routing's tables hold 36 + 8 + 4 entries.
+TEST(Limits, MechanismTablesAreBoundedInAll) {
+  LimitedCluster lc("max_table_entries: 40\n");
+  EXPECT_REFUSED(SubmitText(*lc.cluster, kAlice, ReadFile(SourceDir() + "/configs/parcel-routing.yaml")),
+                 INVALID_ARGUMENT,
+                 "the mechanisms' lookup tables reach 44 entries at 'careful' (8 combinations of its parents' values); "
+                 "this coordinator accepts at most max_table_entries = 40 entries in all");
+}
+
+// With the default settings: a network of about 4e9 parameters, a 1 MB label and an alias bomb
+// were all accepted (the bomb grew graftd past 15 GB); now each is refused and graftd still serves.
+TEST(Limits, DefaultsRefuseTheIssuesExamples) {
+  Cluster c;
+  const std::string parcel = ReadFile(SourceDir() + "/configs/parcel-routing.yaml");
+  EXPECT_REFUSED(SubmitText(c, kAlice, parcel,
+                            {"network.hidden=[65536,65536]", "alignment.local.layer=0", "alignment.careful.layer=0"}),
+                 INVALID_ARGUMENT,
+                 "network: 4297457812 parameters; this coordinator accepts at most max_network_parameters = 100000000");
+  EXPECT_REFUSED(SubmitText(c, kAlice, parcel, {}, {{"note", std::string(1 << 20, 'x')}}), INVALID_ARGUMENT,
+                 "the value of label 'note' is 1048576 bytes; this coordinator accepts at most max_label_bytes = 256");
+  std::string bomb = "a0: &a0 [x, x, x, x, x, x, x, x, x]\n";
+  for (int level = 1; level <= 8; ++level) {
+    absl::StrAppend(&bomb, "a", level, ": &a", level, " [");
+    for (int k = 0; k < 9; ++k) absl::StrAppend(&bomb, k ? ", " : "", "*a", level - 1);
+    absl::StrAppend(&bomb, "]\n");
+  }
+  EXPECT_REFUSED(SubmitText(c, kAlice, bomb), INVALID_ARGUMENT, "more than 200000 nodes");
+  EXPECT_EQ(GetInfo(c, kAlice), grpc::StatusCode::OK);
+  EXPECT_FALSE(c.Submit(kAlice, "parcel-routing", kSmall).empty());
+}
+
+// Open watches per user and calls in flight per token: past the setting a call is
+// RESOURCE_EXHAUSTED naming it, another user is not affected, and the unit comes back when the
+// watch or call ends. Catches no limit, a limit shared by all users, and a unit never given back.
+TEST(Limits, WatchesPerUserAndCallsInFlightPerToken) {
+  LimitedCluster lc("max_watches_per_user: 2\nmax_requests_in_flight_per_token: 3\n");
+  Cluster& c = *lc.cluster;
+  // Three long polls of node1 hold its three calls; a fourth call is refused until they end.
+  v1::RegisterWorkerRequest reg;
+  reg.set_host("w");
+  v1::RegisterWorkerResponse me;
+  ASSERT_TRUE(c.workers().RegisterWorker(c.Ctx(kWorker).get(), reg, &me).ok());
+  struct Poll {
+    grpc::ClientContext ctx;
+    v1::LeaseJobResponse resp;
+    std::atomic<bool> done{false};
+  };
+  std::vector<std::unique_ptr<Poll>> polls;
+  v1::LeaseJobRequest lr;
+  lr.set_worker_id(me.worker_id());
+  lr.set_wait_ms(4000);
+  for (int i = 0; i < 3; ++i) {
+    polls.push_back(std::make_unique<Poll>());
+    Poll* p = polls.back().get();
+    p->ctx.AddMetadata("authorization", std::string("Bearer ") + kWorker);
+    p->ctx.set_deadline(std::chrono::system_clock::now() + std::chrono::seconds(30));
+    c.workers().async()->LeaseJob(&p->ctx, &lr, &p->resp, [p](grpc::Status) { p->done = true; });
+  }
+  auto register_code = [&](const char* token, std::string* message) {
+    v1::RegisterWorkerResponse o;
+    grpc::Status s = c.workers().RegisterWorker(c.Ctx(token).get(), reg, &o);
+    if (message) *message = s.error_message();
+    return s.error_code();
+  };
+  std::string message;
+  ASSERT_TRUE(WaitFor([&] { return register_code(kWorker, &message) == grpc::StatusCode::RESOURCE_EXHAUSTED; }, 20000))
+      << message;
+  EXPECT_NE(message.find("'node1' has 3 requests in flight; graftd allows at most max_requests_in_flight_per_token = 3"),
+            std::string::npos)
+      << message;
+  EXPECT_EQ(register_code(testing::kWorker2, nullptr), grpc::StatusCode::OK);  // another token
+  ASSERT_TRUE(WaitFor([&] { return polls[0]->done && polls[1]->done && polls[2]->done; }, 30000));
+  EXPECT_EQ(register_code(kWorker, nullptr), grpc::StatusCode::OK);  // given back
+
+  // Watches: alice's job stays queued (no worker).
+  const std::string id = c.Submit(kAlice, "parcel-routing", kSmall);
+  struct Watch {
+    grpc::ClientContext ctx;
+    std::unique_ptr<grpc::ClientReader<v1::JobEvent>> reader;
+  };
+  auto open = [&](const char* token) {
+    auto w = std::make_unique<Watch>();
+    w->ctx.AddMetadata("authorization", std::string("Bearer ") + token);
+    w->ctx.set_deadline(std::chrono::system_clock::now() + std::chrono::seconds(30));
+    v1::WatchJobRequest r;
+    r.set_job_id(id);
+    w->reader = c.jobs().WatchJob(&w->ctx, r);
+    return w;
+  };
+  std::vector<std::unique_ptr<Watch>> open_watches;
+  for (int i = 0; i < 2; ++i) {
+    open_watches.push_back(open(kAlice));
+    v1::JobEvent e;
+    ASSERT_TRUE(open_watches.back()->reader->Read(&e));  // open: its first event came
+  }
+  auto third = open(kAlice);
+  v1::JobEvent e;
+  EXPECT_FALSE(third->reader->Read(&e));
+  EXPECT_REFUSED(third->reader->Finish(), RESOURCE_EXHAUSTED,
+                 "'alice' has 2 watch streams open; graftd allows at most max_watches_per_user = 2");
+  auto admin = open(testing::kRoot);  // another user may still watch
+  EXPECT_TRUE(admin->reader->Read(&e));
+  // Closing one gives its unit back.
+  open_watches[0]->ctx.TryCancel();
+  while (open_watches[0]->reader->Read(&e)) {
+  }
+  open_watches[0]->reader->Finish();
+  ASSERT_TRUE(WaitFor(
+      [&] {
+        auto again = open(kAlice);
+        v1::JobEvent first;
+        const bool ok = again->reader->Read(&first);
+        again->ctx.TryCancel();
+        while (again->reader->Read(&first)) {
+        }
+        again->reader->Finish();
+        return ok;
+      },
+      20000));
+  for (auto* w : {open_watches[1].get(), admin.get()}) {
+    w->ctx.TryCancel();
+    while (w->reader->Read(&e)) {
+    }
+    w->reader->Finish();
+  }
+}
+
+// configs/graftd.yaml writes every limit with its default: loading it changes none of them.
+// Catches a default changed in the code but not in the file (or the reverse), and a limit
+// missing from the file (its key would not be there to compare).
+TEST(Limits, ShippedSettingsFileShowsTheDefaults) {
+  const std::string text = ReadFile(SourceDir() + "/configs/graftd.yaml");
+  server::GraftdConfig loaded;
+  ASSERT_TRUE(server::LoadGraftdConfig(SourceDir() + "/configs/graftd.yaml", &loaded).ok());
+  const server::GraftdConfig d;
+  const std::vector<std::tuple<std::string, int64_t, int64_t>> limits = {
+      {"max_config_bytes", loaded.max_config_bytes, d.max_config_bytes},
+      {"max_sweep_jobs", loaded.max_sweep_jobs, d.max_sweep_jobs},
+      {"max_variables", loaded.spec_limits.max_variables, d.spec_limits.max_variables},
+      {"max_domain_values", loaded.spec_limits.max_domain_values, d.spec_limits.max_domain_values},
+      {"max_table_entries", loaded.spec_limits.max_table_entries, d.spec_limits.max_table_entries},
+      {"max_input_space", loaded.spec_limits.max_input_space, d.spec_limits.max_input_space},
+      {"max_network_parameters", loaded.spec_limits.max_network_parameters, d.spec_limits.max_network_parameters},
+      {"max_steps", loaded.spec_limits.max_steps, d.spec_limits.max_steps},
+      {"max_artifact_bytes", loaded.max_artifact_bytes, d.max_artifact_bytes},
+      {"max_points_per_report", loaded.max_points_per_report, d.max_points_per_report},
+      {"max_name_bytes", loaded.max_name_bytes, d.max_name_bytes},
+      {"max_label_bytes", loaded.max_label_bytes, d.max_label_bytes},
+      {"max_labels_per_job", loaded.max_labels_per_job, d.max_labels_per_job},
+      {"max_reason_bytes", loaded.max_reason_bytes, d.max_reason_bytes},
+      {"max_watches_per_user", loaded.max_watches_per_user, d.max_watches_per_user},
+      {"max_requests_in_flight_per_token", loaded.max_requests_in_flight_per_token,
+       d.max_requests_in_flight_per_token},
+  };
+  for (const auto& [key, value, fallback] : limits) {
+    EXPECT_NE(text.find("\n" + key + ": " + std::to_string(fallback)), std::string::npos) << key << " not in the file";
+    EXPECT_EQ(value, fallback) << key;
+  }
 }
 
 }  // namespace

@@ -1,6 +1,7 @@
 #include "configs/reader/spec.h"
 
 #include <algorithm>
+#include <cctype>
 #include <cerrno>
 #include <cmath>
 #include <cstdio>
@@ -110,7 +111,13 @@ class Reader {
     char* end = nullptr;
     double v = std::strtod(node.scalar.c_str(), &end);
     if (node.scalar.empty() || *end != '\0' || !std::isfinite(v)) {
-      Error(node.loc, absl::StrCat(path, ": expected ", expected, ", got ", node.Describe()));
+      // YAML spells not-a-number and infinity .nan and .inf; strtod reads nan, inf and 1e999.
+      std::string lower = node.scalar;
+      for (char& c : lower) c = static_cast<char>(std::tolower(static_cast<unsigned char>(c)));
+      const bool special = lower == ".nan" || lower == ".inf" || lower == "+.inf" || lower == "-.inf" ||
+                           (!node.scalar.empty() && *end == '\0');
+      Error(node.loc, absl::StrCat(path, ": expected ", expected, ", got ", node.Describe(),
+                                   special ? " (not-a-number and infinities are not numbers graft accepts)" : ""));
       return std::nullopt;
     }
     if (v < lo || v > hi || (hi_open && v == hi) || (lo_open && v == lo)) {
