@@ -12,6 +12,7 @@ PACKAGES=(
   python3 python3-numpy python3-scipy python3-statsmodels python3-torch python3-yaml
   python3-grpcio python3-grpc-tools
   slurmctld slurmd slurm-client munge
+  clang libclang-rt-14-dev
 )
 
 missing=()

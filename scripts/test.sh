@@ -1,5 +1,6 @@
 #!/usr/bin/env bash
-# Installs what graft needs, builds it with warnings as errors and runs every test.
+# Installs what graft needs, builds it with warnings as errors, runs every test, then runs each
+# fuzz target for a bounded time (scripts/fuzz.sh).
 # Usage: scripts/test.sh [--sanitize address|thread] [ctest arguments...]   (e.g. scripts/test.sh -R Spec)
 # --sanitize builds the whole tree with that sanitizer into its own folder (build-address or
 # build-thread) and runs the tests there, with the suppressions of tests/sanitizer/.
@@ -27,3 +28,10 @@ export LSAN_OPTIONS="suppressions=$sup/lsan.supp:print_suppressions=0:${LSAN_OPT
 export TSAN_OPTIONS="suppressions=$sup/tsan.supp:exitcode=66:halt_on_error=0:${TSAN_OPTIONS:-}"
 cd "$build"
 ctest --output-on-failure --timeout 1500 "$@"
+cd ..
+# The libFuzzer targets (clang, AddressSanitizer + UBSan, in build-fuzz), each for a bounded time:
+# 4 targets x GRAFT_FUZZ_SECONDS (default 40) s. A crash fails the run. Not with --sanitize: that
+# run is about the tests above.
+if [[ -z "$sanitize" ]]; then
+  bash scripts/fuzz.sh "${GRAFT_FUZZ_SECONDS:-40}"
+fi
