@@ -11,6 +11,8 @@ namespace graft::server {
 namespace {
 
 constexpr size_t kChunkBytes = 1 << 20;
+// Events queued for one watch stream whose client does not read them, before the stream is ended.
+constexpr size_t kMaxWatchBacklog = 10000;
 
 // The `authorization` metadata of a call, or nullopt.
 std::optional<std::string> AuthorizationOf(grpc::CallbackServerContext* ctx) {
@@ -258,9 +260,19 @@ class StreamWriter : public grpc::ServerWriteReactor<Event> {
 
   static void Push(const std::shared_ptr<Shared>& shared, const Event& e, bool done) {
     std::lock_guard<std::mutex> lock(shared->mu);
-    if (shared->reactor == nullptr) return;
+    if (shared->reactor == nullptr || shared->ending) return;
     if (done) {
       shared->done = true;
+    } else if (shared->queue.size() >= kMaxWatchBacklog) {
+      // A watcher that stopped reading: its events would pile up here without end. It is told
+      // so and can reconnect from the step it has; the others are not held up by it.
+      shared->ending = true;
+      shared->end_status = grpc::Status(
+          grpc::StatusCode::RESOURCE_EXHAUSTED,
+          absl::StrCat("this watch fell ", kMaxWatchBacklog, " events behind (the client stopped reading); ",
+                       "watch again with from_step set to the last step received"));
+      // The front may be in flight; the rest is dropped.
+      while (shared->queue.size() > (shared->writing ? 1u : 0u)) shared->queue.pop_back();
     } else {
       shared->queue.push_back(e);
     }

@@ -555,5 +555,85 @@ TEST(Limits, ShippedSettingsFileShowsTheDefaults) {
   }
 }
 
+// A watcher that stops reading does not hold up another watcher, and graftd does not queue its
+// events without end: past 10000 queued events its stream ends with RESOURCE_EXHAUSTED saying to
+// watch again. A fake worker reports 15000 points of about 2 KB each (30 MB, more than the
+// transport's flow-control windows hold). Catches an unbounded per-watcher queue (the slow stream
+// would only end at its deadline) and a slow watcher blocking the fan-out.
+TEST(Watch, AWatcherThatStopsReadingIsEndedAndHoldsUpNoOne) {
+  Cluster c;
+  const std::string id = c.Submit(kAlice, "parcel-routing", kSmall);
+  v1::RegisterWorkerRequest reg;
+  reg.set_host("fake");
+  v1::RegisterWorkerResponse me;
+  ASSERT_TRUE(c.workers().RegisterWorker(c.Ctx(kWorker).get(), reg, &me).ok());
+  v1::LeaseJobRequest lreq;
+  lreq.set_worker_id(me.worker_id());
+  lreq.set_wait_ms(10000);
+  v1::LeaseJobResponse lease;
+  ASSERT_TRUE(c.workers().LeaseJob(c.Ctx(kWorker).get(), lreq, &lease).ok());
+  ASSERT_EQ(lease.job_id(), id);
+
+  // The slow watcher has a connection of its own (a distinct channel argument), reads the first
+  // event and then nothing.
+  grpc::ChannelArguments args;
+  args.SetInt("graft.test.slow_watcher", 1);
+  auto slow_channel = grpc::CreateCustomChannel(c.address(), grpc::InsecureChannelCredentials(), args);
+  auto slow_stub = v1::Jobs::NewStub(slow_channel);
+  grpc::ClientContext slow_ctx;
+  slow_ctx.AddMetadata("authorization", std::string("Bearer ") + kAlice);
+  slow_ctx.set_deadline(std::chrono::system_clock::now() + std::chrono::seconds(120));
+  v1::WatchJobRequest wr;
+  wr.set_job_id(id);
+  auto slow = slow_stub->WatchJob(&slow_ctx, wr);
+  v1::JobEvent first;
+  ASSERT_TRUE(slow->Read(&first));
+
+  std::atomic<int64_t> fast_points{0};
+  std::atomic<bool> fast_open{false};
+  std::thread fast([&] {
+    grpc::ClientContext ctx;
+    ctx.AddMetadata("authorization", std::string("Bearer ") + kAlice);
+    ctx.set_deadline(std::chrono::system_clock::now() + std::chrono::seconds(120));
+    auto rd = c.jobs().WatchJob(&ctx, wr);
+    v1::JobEvent e;
+    while (rd->Read(&e)) {
+      fast_open = true;
+      if (e.has_point()) ++fast_points;
+      if (fast_points.load() >= 15000) ctx.TryCancel();
+    }
+    rd->Finish();
+  });
+  ASSERT_TRUE(WaitFor([&] { return fast_open.load(); }, 20000));
+  const std::string metrics = "{\"pad\": \"" + std::string(2000, 'p') + "\"}";
+  for (int batch = 0; batch < 15; ++batch) {
+    v1::ReportRequest r;
+    r.set_worker_id(me.worker_id());
+    r.set_job_id(id);
+    r.set_attempt(lease.attempt());
+    for (int k = 1; k <= 1000; ++k) {
+      v1::Point* p = r.add_points();
+      p->set_step(batch * 1000 + k);
+      p->set_metrics_json(metrics);
+    }
+    r.set_step(batch * 1000 + 1000);
+    v1::ReportResponse o;
+    grpc::Status s = c.workers().Report(c.Ctx(kWorker, 60000).get(), r, &o);
+    ASSERT_TRUE(s.ok()) << s.error_message();
+  }
+  // The reading watcher got every point.
+  EXPECT_TRUE(WaitFor([&] { return fast_points.load() >= 15000; }, 60000)) << fast_points.load();
+  fast.join();
+  // The slow one, reading at last, gets what was buffered and then the reason.
+  v1::JobEvent e;
+  int64_t got = 0;
+  while (slow->Read(&e)) got += e.has_point() ? 1 : 0;
+  grpc::Status ended = slow->Finish();
+  EXPECT_EQ(ended.error_code(), grpc::StatusCode::RESOURCE_EXHAUSTED) << ended.error_message();
+  EXPECT_NE(ended.error_message().find("this watch fell 10000 events behind"), std::string::npos)
+      << ended.error_message();
+  EXPECT_LT(got, 15000);
+}
+
 }  // namespace
 }  // namespace graft
