@@ -10,6 +10,7 @@
 #include <sstream>
 
 #include "client/render.h"
+#include "client/report_fetch.h"
 #include "proto/sha256.h"
 #include "client/stats.h"
 #include "configs/reader/spec.h"
@@ -274,7 +275,8 @@ std::string Number(double v) {
 
 const std::vector<std::string>& CommandNames() {
   static const std::vector<std::string> kNames = {"check", "submit", "list",    "show",    "watch",   "wait",
-                                                  "cancel", "metrics", "fetch", "compare", "resubmit", "workers"};
+                                                  "cancel", "metrics", "fetch", "compare", "resubmit", "workers",
+                                                  "report"};
   return kNames;
 }
 
@@ -302,12 +304,6 @@ bool ParseTarget(const std::string& text, bool allow_sweep, Target* target, std:
   }
   err << "\n";
   return false;
-}
-
-std::string SettingOf(const std::string& job_name) {
-  const size_t slash = job_name.rfind('/');
-  if (slash != std::string::npos && job_name.compare(slash + 1, 5, "seed=") == 0) return job_name.substr(0, slash);
-  return job_name;
 }
 
 void FlattenMetrics(const std::string& prefix, const json& value, std::vector<std::pair<std::string, std::string>>* out) {
@@ -801,6 +797,49 @@ int CompareCommand(Api& api, const CompareArgs& args, Io& io) {
     io.out << "\n";
   }
   return kExitOk;
+}
+
+int ReportCommand(Api& api, const ReportArgs& args, Io& io) {
+  Target t;
+  if (!ParseTarget(args.id, true, &t, io.err)) return kExitUsage;
+  auto write = [&](const std::string& dir, const std::string& html) {
+    auto path = WriteReportPage(dir, html);
+    if (!path.ok()) {
+      io.err << "graft: " << path.status().message() << "\n";
+      return false;
+    }
+    io.out << *path << "\n";
+    return true;
+  };
+  if (!t.is_sweep) {
+    RunReport run;
+    grpc::Status s = FetchRunReport(api, t.id, io.server, &run);
+    if (!s.ok()) return Report(s, "report", io);
+    return write(args.out_dir, RenderJobReport(run)) ? kExitOk : kExitFailure;
+  }
+  v1::ListJobsRequest req;
+  req.set_sweep_id(t.id);
+  std::vector<v1::Job> jobs;
+  grpc::Status s = ListAll(api, req, &jobs);
+  if (!s.ok()) return Report(s, "report", io);
+  if (jobs.empty()) {
+    io.err << "graft: no sweep " << t.id << "\n  `graft list` shows your jobs\n";
+    return kExitFailure;
+  }
+  std::sort(jobs.begin(), jobs.end(), [](const v1::Job& a, const v1::Job& b) { return IdNumber(a.id()) < IdNumber(b.id()); });
+  SweepReport sweep;
+  sweep.id = t.id;
+  sweep.source = "graftd at " + io.server;
+  for (const auto& listed : jobs) {
+    RunReport run;
+    s = FetchRunReport(api, listed.id(), io.server, &run);
+    if (!s.ok()) return Report(s, "report " + listed.id(), io);
+    // Each job's page beside the sweep's, linked from it.
+    if (!write((fs::path(args.out_dir) / run.id).string(), RenderJobReport(run))) return kExitFailure;
+    sweep.job_pages[run.id] = run.id + "/index.html";
+    sweep.jobs.push_back(std::move(run));
+  }
+  return write(args.out_dir, RenderSweepReport(sweep)) ? kExitOk : kExitFailure;
 }
 
 int ResubmitCommand(Api& api, const ResubmitArgs& args, Io& io) {

@@ -11,6 +11,7 @@
 #include <vector>
 
 #include "client/api.h"
+#include "client/report.h"  // SettingOf
 #include "nlohmann/json.hpp"
 #include "proto/exit_codes.h"
 
@@ -96,6 +97,10 @@ struct ResubmitArgs {
   std::string id;
   bool json = false;
 };
+struct ReportArgs {
+  std::string id;       // j-N or s-N
+  std::string out_dir;  // DIR/index.html; a sweep's job pages in DIR/<job id>/index.html
+};
 struct WorkersArgs {
   bool all = false;   // also the workers that are gone
   bool json = false;
@@ -116,6 +121,9 @@ int MetricsCommand(Api& api, const MetricsArgs& args, Io& io);
 int FetchCommand(Api& api, const FetchArgs& args, Io& io);
 int CompareCommand(Api& api, const CompareArgs& args, Io& io);
 int ResubmitCommand(Api& api, const ResubmitArgs& args, Io& io);
+// Writes the HTML report of a job or a sweep (client/report.h) and prints the paths written.
+// 1 when graftd has no such job or sweep, or DIR cannot be written; 6 when graftd is unreachable.
+int ReportCommand(Api& api, const ReportArgs& args, Io& io);
 // The worker fleet: one row per worker (id, host, threads, Slurm job, state, last report, jobs
 // finished); `json`: an array of objects with the fields of v1::Worker in snake_case.
 int WorkersCommand(Api& api, const WorkersArgs& args, Io& io);
@@ -123,9 +131,6 @@ int WorkersCommand(Api& api, const WorkersArgs& args, Io& io);
 // Parses "j-N" / "s-N"; on failure writes a message with a suggestion to `err` and returns
 // false. `allow_sweep` false refuses s-N with a message saying the command takes a job.
 bool ParseTarget(const std::string& text, bool allow_sweep, Target* target, std::ostream& err);
-
-// The setting a sweep job belongs to: its name without a trailing "/seed=N" segment.
-std::string SettingOf(const std::string& job_name);
 
 // Flattens a metrics object into dotted columns ("acc_held_out.value", "iia_by_set.local.lo", ...),
 // scalars as JSON text (strings unquoted, null empty), in the object's key order.

@@ -135,6 +135,11 @@ int main(int argc, char** argv) {
   c_fetch->add_option("JOB", fetch.id, "job id j-N")->required();
   c_fetch->add_option("--out", fetch.out_dir, "directory to write them to")->required();
 
+  ReportArgs report;
+  auto* c_report = app.add_subcommand("report", "write a self-contained HTML page of a job or a sweep (DIR/index.html)");
+  c_report->add_option("ID", report.id, "job id j-N or sweep id s-N")->required();
+  c_report->add_option("--out", report.out_dir, "directory for index.html (a sweep's job pages go beside it)")->required();
+
   CompareArgs compare;
   bool compare_json = false;
   auto* c_compare = app.add_subcommand("compare", "per setting of a sweep: mean and 95% interval over seeds");
@@ -221,6 +226,7 @@ int main(int argc, char** argv) {
     return MetricsCommand(*api, metrics, io);
   }
   if (c_fetch->parsed()) return FetchCommand(*api, fetch, io);
+  if (c_report->parsed()) return ReportCommand(*api, report, io);
   if (c_compare->parsed()) {
     if (compare_json) compare.format = "json";
     return CompareCommand(*api, compare, io);

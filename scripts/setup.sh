@@ -10,7 +10,8 @@ PACKAGES=(
   libspdlog-dev libyaml-cpp-dev libgtest-dev libgmock-dev
   libmuparser-dev libsqlite3-dev nlohmann-json3-dev libcli11-dev libssl-dev openssl
   python3 python3-numpy python3-scipy python3-statsmodels python3-torch python3-yaml
-  python3-grpcio python3-grpc-tools
+  python3-grpcio python3-grpc-tools python3-pandas python3-pil
+  chromium fonts-dejavu-core
   slurmctld slurmd slurm-client munge
   clang libclang-rt-14-dev
 )

@@ -1,6 +1,7 @@
 #include "trainer/worker/commands.h"
 
 #include "absl/strings/str_join.h"
+#include "client/report.h"
 #include "configs/reader/spec.h"
 #include "configs/reader/sweep.h"
 #include "trainer/train/analysis.h"
@@ -151,6 +152,21 @@ int ScanCommand(const AnalyseArgs& args, std::ostream& out, std::ostream& err) {
 }
 int DasCommand(const AnalyseArgs& args, std::ostream& out, std::ostream& err) {
   return Analyse(args, "das", &train::DasStored, out, err);
+}
+
+int ReportCommand(const std::string& run_dir, const std::string& out_dir, std::ostream& out, std::ostream& err) {
+  auto run = client::LoadRunDirectory(run_dir);
+  if (!run.ok()) {
+    err << "graft-worker: " << run.status().message() << "\n";
+    return kExitFailure;
+  }
+  auto path = client::WriteReportPage(out_dir, client::RenderJobReport(*run));
+  if (!path.ok()) {
+    err << "graft-worker: " << path.status().message() << "\n";
+    return kExitFailure;
+  }
+  out << *path << "\n";
+  return kExitOk;
 }
 
 }  // namespace graft::worker

@@ -62,6 +62,11 @@ int EvaluateCommand(const AnalyseArgs& args, std::ostream& out, std::ostream& er
 int ScanCommand(const AnalyseArgs& args, std::ostream& out, std::ostream& err);
 int DasCommand(const AnalyseArgs& args, std::ostream& out, std::ostream& err);
 
+// `graft-worker report RUN_DIR --out DIR`: writes DIR/index.html, the HTML report of a run
+// directory (client/report.h; the same page `graft report` writes for a job) and prints its path.
+// 1 when RUN_DIR is no run directory or DIR cannot be written.
+int ReportCommand(const std::string& run_dir, const std::string& out_dir, std::ostream& out, std::ostream& err);
+
 }  // namespace graft::worker
 
 #endif  // GRAFT_TRAINER_WORKER_COMMANDS_H_

@@ -61,6 +61,11 @@ int main(int argc, char** argv) {
   CLI::App* das = add_analysis("das", "Distributed alignment search: learn a rotation of one layer of a stored "
                                       "network, with an untrained network as the control");
 
+  std::string report_run_dir, report_out_dir;
+  CLI::App* report = app.add_subcommand("report", "Write a self-contained HTML page (DIR/index.html) of a run directory");
+  report->add_option("RUN_DIR", report_run_dir, "run directory written by `run` or `graft fetch`")->required();
+  report->add_option("--out", report_out_dir, "directory for index.html")->required();
+
   graft::worker::ServeArgs serve_args;
   CLI::App* serve = app.add_subcommand("serve", "Lease jobs from a coordinator and train them, one at a time");
   serve->add_option("--server", serve_args.server, "coordinator host:port (default 127.0.0.1:7070)");
@@ -92,6 +97,7 @@ int main(int argc, char** argv) {
   if (evaluate->parsed()) return graft::worker::EvaluateCommand(analyse_args, std::cout, std::cerr);
   if (scan->parsed()) return graft::worker::ScanCommand(analyse_args, std::cout, std::cerr);
   if (das->parsed()) return graft::worker::DasCommand(analyse_args, std::cout, std::cerr);
+  if (report->parsed()) return graft::worker::ReportCommand(report_run_dir, report_out_dir, std::cout, std::cerr);
   if (serve->parsed()) {
     std::signal(SIGINT, OnStopSignal);
     std::signal(SIGTERM, OnStopSignal);
