@@ -30,6 +30,7 @@ using causal::VariableDecl;
 // Parse-time positions of things validated after the model exists.
 struct SiteLocations {
   Location layer, units;
+  std::vector<Location> positions;  // transformer: per listed position
 };
 struct Positions {
   std::vector<Location> var_name;         // per declaration
@@ -40,7 +41,8 @@ struct Positions {
   std::vector<std::vector<Location>> set_items;  // per intervention set, per name
   std::vector<Location> sets;             // per intervention set
   Location interventions, held_out, hidden, root;
-  Location scan_block, das, das_layer, das_dims;
+  Location scan_block, das, das_layer, das_dims, das_position;
+  std::vector<Location> scan_positions;
   Location algorithm, steps, das_steps;
 };
 
@@ -380,14 +382,98 @@ void ReadAlgorithm(Reader& r, const ConfigNode& algo, JobSpec& spec, Positions& 
   add(std::move(d), k.loc, expr_loc, dom_loc, std::move(items));
 }
 
+// The key node of `key` in `map` (its location is the key's), or nullptr.
+const ConfigNode* KeyNode(const ConfigNode& map, const std::string& key) {
+  for (const auto& [k, v] : map.entries) {
+    if (k.scalar == key) return &k;
+  }
+  return nullptr;
+}
+
+// network: {type: transformer, width, layers, heads, mlp_width, activation}.
+void ReadTransformer(Reader& r, const ConfigNode& net, JobSpec& spec) {
+  NetworkSpec& n = spec.network;
+  n.activation = Activation::kGelu;
+  for (const char* mlp_key : {"hidden", "embedding"}) {
+    if (const ConfigNode* k = KeyNode(net, mlp_key)) {
+      r.Error(k->loc, absl::StrCat("network.", mlp_key, ": a transformer has no '", mlp_key,
+                                   "'; its tokens are 'width' wide and it has 'layers' blocks (keys: type, width, "
+                                   "layers, heads, mlp_width, activation)"));
+    }
+  }
+  r.CheckKeys(net, "network", {"type", "width", "layers", "heads", "mlp_width", "activation", "hidden", "embedding"});
+  const ConfigNode* width = net.Find("width");
+  if (width != nullptr) {
+    if (auto v = r.Int(*width, "network.width", 1, 65536)) n.width = static_cast<int>(*v);
+  }
+  if (const ConfigNode* x = net.Find("layers")) {
+    if (auto v = r.Int(*x, "network.layers", 1, 1024)) n.layers = static_cast<int>(*v);
+  }
+  const ConfigNode* heads = net.Find("heads");
+  if (heads != nullptr) {
+    if (auto v = r.Int(*heads, "network.heads", 1, 65536)) n.heads = static_cast<int>(*v);
+  }
+  if (const ConfigNode* x = net.Find("mlp_width")) {
+    if (auto v = r.Int(*x, "network.mlp_width", 1, 1 << 20)) n.mlp_width = static_cast<int>(*v);
+  }
+  if (const ConfigNode* a = net.Find("activation")) {
+    if (auto c = r.Choice(*a, "network.activation", {"relu", "gelu", "tanh"})) n.activation = static_cast<Activation>(*c);
+  }
+  if (r.ok() && n.width % n.heads != 0) {
+    const ConfigNode* at = heads != nullptr ? heads : width != nullptr ? width : &net;
+    r.Error(at->loc, absl::StrCat("network.heads: width ", n.width, " is not divisible by ", n.heads,
+                                  " heads; each head gets width / heads dimensions, so choose heads that divide ",
+                                  n.width));
+  }
+}
+
+// A position (an input's name or `readout`) or a non-empty list of distinct ones, as written.
+std::optional<std::vector<std::string>> ReadPositions(Reader& r, const ConfigNode& node, const std::string& path,
+                                                      std::vector<Location>* locs) {
+  std::vector<const ConfigNode*> items;
+  if (node.IsSequence()) {
+    for (const auto& item : node.items) items.push_back(&item);
+  } else {
+    items.push_back(&node);
+  }
+  if (items.empty()) {
+    r.Error(node.loc, absl::StrCat(path, ": expected an input's name, readout, or a non-empty list of them, got []"));
+    return std::nullopt;
+  }
+  std::vector<std::string> out;
+  bool bad = false;
+  for (const ConfigNode* item : items) {
+    if (!item->IsScalar() || item->scalar.empty()) {
+      r.Error(item->loc, absl::StrCat(path, ": expected an input's name or readout, got ", item->Describe()));
+      bad = true;
+      continue;
+    }
+    if (std::find(out.begin(), out.end(), item->scalar) != out.end()) {
+      r.Error(item->loc, absl::StrCat(path, ": position '", item->scalar, "' is listed twice"));
+      bad = true;
+      continue;
+    }
+    out.push_back(item->scalar);
+    if (locs != nullptr) locs->push_back(item->loc);
+  }
+  if (bad) return std::nullopt;
+  return out;
+}
+
 void ReadNetwork(Reader& r, const ConfigNode* net, JobSpec& spec, Positions& pos) {
   pos.hidden = pos.root;
   if (net == nullptr) return;
   pos.hidden = net->loc;
-  r.CheckKeys(*net, "network", {"type", "embedding", "hidden", "activation"});
   if (const ConfigNode* t = net->Find("type")) {
-    if (auto c = r.Choice(*t, "network.type", {"mlp"})) spec.network.type = "mlp";
+    auto c = r.Choice(*t, "network.type", {"mlp", "transformer"});
+    if (!c) return;  // the other keys depend on the type
+    spec.network.type = *c == 0 ? "mlp" : "transformer";
   }
+  if (spec.network.is_transformer()) {
+    ReadTransformer(r, *net, spec);
+    return;
+  }
+  r.CheckKeys(*net, "network", {"type", "embedding", "hidden", "activation"});
   if (const ConfigNode* e = r.Map(net->Find("embedding"), "network.embedding")) {
     r.CheckKeys(*e, "network.embedding", {"dim", "init"});
     if (const ConfigNode* d = e->Find("dim")) {
@@ -419,29 +505,45 @@ void ReadNetwork(Reader& r, const ConfigNode* net, JobSpec& spec, Positions& pos
 
 void ReadAlignment(Reader& r, const ConfigNode* al, JobSpec& spec, Positions& pos) {
   if (al == nullptr) return;
+  const bool transformer = spec.network.is_transformer();
   for (const auto& [k, v] : al->entries) {
     const std::string path = absl::StrCat("alignment.", k.scalar);
     if (!v.IsMap()) {
-      r.Error(v.loc, absl::StrCat(path, ": expected {layer: K, units: A-B}, got ", v.Describe()));
+      r.Error(v.loc, absl::StrCat(path, transformer ? ": expected {layer: K, position: NAME, units: A-B}, got "
+                                                    : ": expected {layer: K, units: A-B}, got ",
+                                  v.Describe()));
       continue;
     }
-    r.CheckKeys(v, path, {"layer", "units"});
+    if (transformer) {
+      r.CheckKeys(v, path, {"layer", "position", "units"});
+    } else if (const ConfigNode* p = KeyNode(v, "position")) {
+      r.Error(p->loc, absl::StrCat(path, ".position: only a transformer has token positions; an MLP's site is a "
+                                   "layer and units (set network.type: transformer to align at tokens)"));
+    } else {
+      r.CheckKeys(v, path, {"layer", "units"});
+    }
     const ConfigNode* layer = v.Find("layer");
     const ConfigNode* units = v.Find("units");
-    if (layer == nullptr || units == nullptr) {
-      r.Error(v.loc, absl::StrCat(path, ": needs both 'layer' and 'units'"));
+    const ConfigNode* position = v.Find("position");
+    if (layer == nullptr || units == nullptr || (transformer && position == nullptr)) {
+      r.Error(v.loc, absl::StrCat(path, transformer ? ": needs 'layer', 'position' and 'units'"
+                                                    : ": needs both 'layer' and 'units'"));
       continue;
     }
     auto l = r.Int(*layer, path + ".layer", 0, 1 << 20);
     auto u = ReadUnits(r, *units, path + ".units");
-    if (!l || !u) continue;
+    SiteLocations where{layer->loc, units->loc, {}};
+    std::optional<std::vector<std::string>> positions = std::vector<std::string>{};
+    if (transformer) positions = ReadPositions(r, *position, path + ".position", &where.positions);
+    if (!l || !u || !positions) continue;
     SiteSpec s;
     s.variable = k.scalar;
     s.layer = static_cast<int>(*l);
+    s.positions = std::move(*positions);
     s.units = std::move(*u);
     s.loc = k.loc;
     spec.alignment.push_back(std::move(s));
-    pos.sites.push_back(SiteLocations{layer->loc, units->loc});
+    pos.sites.push_back(std::move(where));
   }
 }
 
@@ -549,13 +651,39 @@ void ReadEvaluation(Reader& r, const ConfigNode* ev, JobSpec& spec, Positions& p
   }
 }
 
+// The network's site layers: an MLP's hidden layers, a transformer's blocks.
+int NumLayers(const JobSpec& spec) {
+  return spec.network.is_transformer() ? spec.network.layers : static_cast<int>(spec.network.hidden.size());
+}
+// Units a site may name in `layer`: the hidden layer's width, or the residual stream's width
+// (at each token).
+int LayerWidth(const JobSpec& spec, int layer) {
+  return spec.network.is_transformer() ? spec.network.width : spec.network.hidden[layer];
+}
+// "network.hidden has 3 layers, numbered 0-2" or the transformer's equivalent.
+std::string LayersText(const JobSpec& spec) {
+  const int n = NumLayers(spec);
+  if (spec.network.is_transformer()) {
+    return absl::StrCat("network.layers is ", n, ", so layers are numbered 0-", n - 1,
+                        " (layer K is the residual stream after block K)");
+  }
+  return absl::StrCat("network.hidden has ", n, " layers, numbered 0-", n - 1);
+}
+
 void ReadScan(Reader& r, const ConfigNode* sc, JobSpec& spec, Positions& pos) {
   if (sc == nullptr) return;
   ScanSpec& s = spec.scan;
   s.present = true;
   pos.scan_block = sc->loc;
-  r.CheckKeys(*sc, "scan", {"layers", "block", "stride", "random_subsets", "pairs"});
-  const int layers = static_cast<int>(spec.network.hidden.size());
+  if (spec.network.is_transformer()) {
+    r.CheckKeys(*sc, "scan", {"layers", "positions", "block", "stride", "random_subsets", "pairs"});
+    if (const ConfigNode* p = sc->Find("positions")) {
+      if (auto v = ReadPositions(r, *p, "scan.positions", &pos.scan_positions)) s.positions = std::move(*v);
+    }
+  } else {
+    r.CheckKeys(*sc, "scan", {"layers", "block", "stride", "random_subsets", "pairs"});
+  }
+  const int layers = NumLayers(spec);
   if (const ConfigNode* l = sc->Find("layers")) {
     std::vector<const ConfigNode*> items;
     if (l->IsSequence()) {
@@ -568,8 +696,7 @@ void ReadScan(Reader& r, const ConfigNode* sc, JobSpec& spec, Positions& pos) {
       auto v = r.Int(*item, "scan.layers[]", 0, 1 << 20);
       if (!v) continue;
       if (*v >= layers) {
-        r.Error(item->loc, absl::StrCat("scan.layers: layer ", *v, " does not exist; network.hidden has ", layers,
-                                        " layers, numbered 0-", layers - 1));
+        r.Error(item->loc, absl::StrCat("scan.layers: layer ", *v, " does not exist; ", LayersText(spec)));
       } else if (std::find(s.layers.begin(), s.layers.end(), *v) != s.layers.end()) {
         r.Error(item->loc, absl::StrCat("scan.layers: layer ", *v, " is listed twice"));
       } else {
@@ -593,10 +720,12 @@ void ReadScan(Reader& r, const ConfigNode* sc, JobSpec& spec, Positions& pos) {
   }
   for (int l = 0; l < layers; ++l) {
     if (!s.layers.empty() && std::find(s.layers.begin(), s.layers.end(), l) == s.layers.end()) continue;
-    if (s.block > spec.network.hidden[l]) {
+    if (s.block > LayerWidth(spec, l)) {
       r.Error(pos.scan_block, absl::StrCat("scan.block: ", s.block, " units do not fit in layer ", l, ", which has ",
-                                           spec.network.hidden[l], "; lower scan.block or leave that layer out of "
-                                           "scan.layers"));
+                                           LayerWidth(spec, l),
+                                           spec.network.is_transformer() ? " units at each token; lower scan.block"
+                                                                         : "; lower scan.block or leave that layer out of "
+                                                                           "scan.layers"));
       break;
     }
   }
@@ -607,7 +736,20 @@ void ReadDas(Reader& r, const ConfigNode* da, JobSpec& spec, Positions& pos) {
   DasSpec& d = spec.das;
   d.present = true;
   pos.das = pos.das_layer = pos.das_dims = da->loc;
-  r.CheckKeys(*da, "das", {"layer", "dims", "steps", "lr", "batch_size"});
+  if (spec.network.is_transformer()) {
+    r.CheckKeys(*da, "das", {"layer", "position", "dims", "steps", "lr", "batch_size"});
+    if (const ConfigNode* n = da->Find("position")) {
+      pos.das_position = n->loc;
+      if (!n->IsScalar() || n->scalar.empty()) {
+        r.Error(n->loc, absl::StrCat("das.position: expected one input's name or readout (DAS rotates the "
+                                     "residual stream at one token), got ", n->Describe()));
+      } else {
+        d.position = n->scalar;
+      }
+    }
+  } else {
+    r.CheckKeys(*da, "das", {"layer", "dims", "steps", "lr", "batch_size"});
+  }
   if (const ConfigNode* n = da->Find("layer")) {
     pos.das_layer = n->loc;
     if (auto v = r.Int(*n, "das.layer", 0, 1 << 20)) d.layer = static_cast<int>(*v);
@@ -639,7 +781,7 @@ void ValidateDas(Reader& r, const Positions& pos, const std::vector<std::vector<
                      "das.dims; its layer the default das.layer)");
     return;
   }
-  const int layers = static_cast<int>(spec.network.hidden.size());
+  const int layers = NumLayers(spec);
   if (d.layer < 0) {
     for (const auto& site : spec.alignment) {
       if (site.layer != spec.alignment.front().layer) {
@@ -651,17 +793,33 @@ void ValidateDas(Reader& r, const Positions& pos, const std::vector<std::vector<
     }
     d.layer = spec.alignment.front().layer;
   } else if (d.layer >= layers) {
-    r.Error(pos.das_layer, absl::StrCat("das.layer: layer ", d.layer, " does not exist; network.hidden has ", layers,
-                                        " layers, numbered 0-", layers - 1));
+    r.Error(pos.das_layer, absl::StrCat("das.layer: layer ", d.layer, " does not exist; ", LayersText(spec)));
     return;
   }
-  const int width = spec.network.hidden[d.layer];
+  if (spec.network.is_transformer()) {
+    if (d.position.empty()) {
+      for (const auto& site : spec.alignment) {
+        if (site.positions.size() != 1 || site.positions != spec.alignment.front().positions) {
+          r.Error(pos.das, absl::StrCat("das: DAS rotates the residual stream at one token, but the aligned variables "
+                                        "do not all sit at one position (", site.variable, " at ",
+                                        absl::StrJoin(site.positions, ", "), "); set das.position"));
+          return;
+        }
+      }
+      d.position = spec.alignment.front().positions.front();
+    } else if (TokenOf(model, d.position) < 0) {
+      r.Error(pos.das_position, absl::StrCat("das.position: '", d.position, "' is neither an input nor readout"));
+      return;
+    }
+  }
+  const int width = LayerWidth(spec, d.layer);
   int needed = 0;
   for (const auto& site : spec.alignment) needed += d.dims > 0 ? d.dims : static_cast<int>(site.units.size());
   if (needed > width) {
     r.Error(pos.das_dims, absl::StrCat("das.dims: the ", spec.alignment.size(), " aligned variables need ", needed,
                                        " rotated dimensions, but layer ", d.layer, " has only ", width,
-                                       " units; lower das.dims"));
+                                       spec.network.is_transformer() ? " units at a token" : " units",
+                                       "; lower das.dims"));
     return;
   }
   // All DAS variables share one layer: a set that moves X without its descendant Y cannot work.
@@ -747,7 +905,9 @@ void CheckLimitsOfModel(Reader& r, const Positions& pos, const JobSpec& spec, co
   if (parameters > limits.max_network_parameters) {
     r.Error(pos.hidden, absl::StrCat("network: ", parameters,
                                      " parameters; this coordinator accepts at most max_network_parameters = ",
-                                     limits.max_network_parameters, "; use narrower or fewer hidden layers"));
+                                     limits.max_network_parameters,
+                                     spec.network.is_transformer() ? "; use a narrower width or mlp_width, or fewer layers"
+                                                                   : "; use narrower or fewer hidden layers"));
   }
 }
 
@@ -755,8 +915,28 @@ void CheckLimitsOfModel(Reader& r, const Positions& pos, const JobSpec& spec, co
 void Validate(Reader& r, const Positions& pos, ResolvedJob& job) {
   const JobSpec& spec = job.spec;
   const causal::CausalModel& model = *job.model;
-  const int layers = static_cast<int>(spec.network.hidden.size());
+  const int layers = NumLayers(spec);
+  const bool transformer = spec.network.is_transformer();
   job.site_of_variable.assign(model.num_variables(), -1);
+  std::vector<std::string> position_names;
+  for (int i : model.inputs()) position_names.push_back(model.variable(i).name);
+  auto unknown_position = [&](const std::string& what, const std::string& name) {
+    std::vector<std::string> shown(position_names.begin(),
+                                   position_names.begin() + std::min<size_t>(position_names.size(), 8));
+    if (shown.size() < position_names.size()) shown.push_back("...");
+    std::vector<std::string> all = position_names;
+    all.push_back("readout");
+    std::string msg = absl::StrCat(what, ": '", name, "' is not a token position; the positions are the inputs (",
+                                   absl::StrJoin(shown, ", "), ") and readout");
+    std::string near = Nearest(name, all);
+    if (!near.empty()) absl::StrAppend(&msg, "; did you mean '", near, "'?");
+    return msg;
+  };
+  for (size_t i = 0; i < spec.scan.positions.size(); ++i) {
+    if (TokenOf(model, spec.scan.positions[i]) < 0) {
+      r.Error(pos.scan_positions[i], unknown_position("scan.positions", spec.scan.positions[i]));
+    }
+  }
   std::vector<std::string> var_names;
   for (int i = 0; i < model.num_variables(); ++i) var_names.push_back(model.variable(i).name);
 
@@ -783,30 +963,54 @@ void Validate(Reader& r, const Positions& pos, ResolvedJob& job) {
       continue;
     }
     if (site.layer >= layers) {
-      r.Error(pos.sites[s].layer, absl::StrCat(path, ".layer: layer ", site.layer, " does not exist; network.hidden has ",
-                                               layers, " layers, numbered 0-", layers - 1));
+      r.Error(pos.sites[s].layer, absl::StrCat(path, ".layer: layer ", site.layer, " does not exist; ",
+                                               LayersText(spec)));
       continue;
     }
-    const int width = spec.network.hidden[site.layer];
+    const int width = LayerWidth(spec, site.layer);
     if (site.units.back() >= width) {
       r.Error(pos.sites[s].units, absl::StrCat(path, ".units: unit ", site.units.back(), " is outside layer ", site.layer,
-                                               ", which has ", width, " units (0-", width - 1, ")"));
+                                               ", which has ", width, transformer ? " units at each token (0-" : " units (0-",
+                                               width - 1, ")"));
       continue;
     }
+    bool bad_position = false;
+    for (size_t p = 0; p < site.positions.size(); ++p) {
+      const std::string& name = site.positions[p];
+      if (TokenOf(model, name) < 0) {
+        r.Error(pos.sites[s].positions[p], unknown_position(path + ".position", name));
+        bad_position = true;
+      } else if (site.layer == layers - 1 && name != "readout") {
+        // The logits read only the readout token after the last block.
+        r.Error(pos.sites[s].positions[p],
+                absl::StrCat(path, ".position: layer ", site.layer, " is the last; after it only the readout token "
+                             "reaches the logits, so units at '", name, "' could never change the output; align '",
+                             site.variable, "' at readout or in an earlier layer"));
+        bad_position = true;
+      }
+    }
+    if (bad_position) continue;
     bool overlap = false;
-    for (size_t o = 0; o < s; ++o) {
+    for (size_t o = 0; o < s && !overlap; ++o) {
       const SiteSpec& other = spec.alignment[o];
       const int ov = model.Find(other.variable);
       if (other.layer != site.layer || ov < 0 || job.site_of_variable[ov] != static_cast<int>(o)) continue;
+      std::string shared;  // a position both sites list (transformer)
+      for (const auto& p : site.positions) {
+        if (shared.empty() && std::find(other.positions.begin(), other.positions.end(), p) != other.positions.end()) {
+          shared = p;
+        }
+      }
+      if (transformer && shared.empty()) continue;
       std::vector<int> common;
       std::set_intersection(site.units.begin(), site.units.end(), other.units.begin(), other.units.end(),
                             std::back_inserter(common));
       if (!common.empty()) {
         r.Error(pos.sites[s].units, absl::StrCat(path, ".units: unit ", common.front(), " of layer ", site.layer,
+                                                 transformer ? absl::StrCat(" at ", shared) : std::string(),
                                                  " is also aligned to '", other.variable,
                                                  "'; each unit can stand for one variable only"));
         overlap = true;
-        break;
       }
     }
     if (overlap) continue;
@@ -894,12 +1098,16 @@ void Validate(Reader& r, const Positions& pos, ResolvedJob& job) {
         const Location loc = set_pos[i] == SIZE_MAX ? pos.interventions : pos.sets[set_pos[i]];
         std::vector<std::string> names;
         for (int v : sets[i]) names.push_back(model.variable(v).name);
+        // A transformer's layer K is computed from layer K-1 at every token (attention mixes them),
+        // so a later layer can recompute Y from X whatever their positions; the same layer cannot.
         r.Error(loc, absl::StrCat("training.interventions: the set [", absl::StrJoin(names, ", "), "] moves '",
                                   model.variable(x).name, "' without its descendant '", model.variable(y).name,
                                   "', but '", model.variable(y).name, "' is aligned in layer ", sy.layer,
                                   ", not after '", model.variable(x).name, "' (layer ", sx.layer,
-                                  "), so the network could not recompute it; align '", model.variable(y).name,
-                                  "' in a later layer or intervene on both together"));
+                                  transformer ? "), and a transformer computes layer K from layer K-1 only (at "
+                                                "every position), so the network could not recompute it; align '"
+                                              : "), so the network could not recompute it; align '",
+                                  model.variable(y).name, "' in a later layer or intervene on both together"));
       }
     }
   }
@@ -927,6 +1135,15 @@ void Validate(Reader& r, const Positions& pos, ResolvedJob& job) {
 
 }  // namespace
 
+int TokenOf(const causal::CausalModel& model, const std::string& position) {
+  const auto& inputs = model.inputs();
+  if (position == "readout") return static_cast<int>(inputs.size());
+  for (size_t k = 0; k < inputs.size(); ++k) {
+    if (model.variable(inputs[k]).name == position) return static_cast<int>(k);
+  }
+  return -1;
+}
+
 SpecLimits SpecLimits::None() {
   SpecLimits l;
   l.max_variables = INT64_MAX;
@@ -943,13 +1160,22 @@ int64_t NetworkParameters(const JobSpec& spec, const causal::CausalModel& model)
   long double total = 0;
   int64_t input_values = 0;
   for (int i : model.inputs()) input_values += model.variable(i).domain.size();
+  const long double classes = model.output() >= 0 ? model.variable(model.output()).domain.size() : 0;
+  if (spec.network.is_transformer()) {
+    const long double w = spec.network.width, m = spec.network.mlp_width;
+    const long double tokens = static_cast<long double>(model.inputs().size()) + 1;
+    total += static_cast<long double>(input_values) * w + tokens * w + w;  // embed.*, pos, readout
+    // ln1, in_proj, out_proj, ln2, mlp.fc, mlp.proj
+    const long double block = 2 * w + (3 * w * w + 3 * w) + (w * w + w) + 2 * w + (m * w + m) + (w * m + w);
+    total += block * spec.network.layers + 2 * w + w * classes + classes;  // ln_final, out
+    return total >= static_cast<long double>(INT64_MAX) ? INT64_MAX : static_cast<int64_t>(total);
+  }
   total += static_cast<long double>(input_values) * spec.network.embedding_dim;
   long double in = static_cast<long double>(model.inputs().size()) * spec.network.embedding_dim;
   for (int width : spec.network.hidden) {
     total += in * width + width;
     in = width;
   }
-  const long double classes = model.output() >= 0 ? model.variable(model.output()).domain.size() : 0;
   total += in * classes + classes;
   return total >= static_cast<long double>(INT64_MAX) ? INT64_MAX : static_cast<int64_t>(total);
 }
@@ -1144,11 +1370,18 @@ std::string ResolvedSpecYaml(const JobSpec& spec) {
 
   ConfigNode net = MapNode(), emb = MapNode(), hidden = SeqNode();
   Put(net, "type", Scalar(spec.network.type));
-  Put(emb, "dim", Scalar(absl::StrCat(spec.network.embedding_dim)));
-  Put(emb, "init", Scalar(ToString(spec.network.embedding_init)));
-  Put(net, "embedding", std::move(emb));
-  for (int w : spec.network.hidden) hidden.items.push_back(Scalar(absl::StrCat(w)));
-  Put(net, "hidden", std::move(hidden));
+  if (spec.network.is_transformer()) {
+    Put(net, "width", Scalar(absl::StrCat(spec.network.width)));
+    Put(net, "layers", Scalar(absl::StrCat(spec.network.layers)));
+    Put(net, "heads", Scalar(absl::StrCat(spec.network.heads)));
+    Put(net, "mlp_width", Scalar(absl::StrCat(spec.network.mlp_width)));
+  } else {
+    Put(emb, "dim", Scalar(absl::StrCat(spec.network.embedding_dim)));
+    Put(emb, "init", Scalar(ToString(spec.network.embedding_init)));
+    Put(net, "embedding", std::move(emb));
+    for (int w : spec.network.hidden) hidden.items.push_back(Scalar(absl::StrCat(w)));
+    Put(net, "hidden", std::move(hidden));
+  }
   Put(net, "activation", Scalar(ToString(spec.network.activation)));
   Put(root, "network", std::move(net));
 
@@ -1156,6 +1389,13 @@ std::string ResolvedSpecYaml(const JobSpec& spec) {
   for (const auto& s : spec.alignment) {
     ConfigNode site = MapNode(), units = SeqNode();
     Put(site, "layer", Scalar(absl::StrCat(s.layer)));
+    if (s.positions.size() == 1) {
+      Put(site, "position", Scalar(s.positions.front(), true));
+    } else if (!s.positions.empty()) {
+      ConfigNode ps = SeqNode();
+      for (const auto& p : s.positions) ps.items.push_back(Scalar(p, true));
+      Put(site, "position", std::move(ps));
+    }
     for (int u : s.units) units.items.push_back(Scalar(absl::StrCat(u)));
     Put(site, "units", std::move(units));
     Put(al, s.variable, std::move(site));
@@ -1199,6 +1439,11 @@ std::string ResolvedSpecYaml(const JobSpec& spec) {
       for (int l : spec.scan.layers) ls.items.push_back(Scalar(absl::StrCat(l)));
       Put(sc, "layers", std::move(ls));
     }
+    if (!spec.scan.positions.empty()) {
+      ConfigNode ps = SeqNode();
+      for (const auto& p : spec.scan.positions) ps.items.push_back(Scalar(p, true));
+      Put(sc, "positions", std::move(ps));
+    }
     Put(sc, "block", Scalar(absl::StrCat(spec.scan.block)));
     Put(sc, "stride", Scalar(absl::StrCat(spec.scan.stride)));
     Put(sc, "random_subsets", Scalar(absl::StrCat(spec.scan.random_subsets)));
@@ -1208,6 +1453,7 @@ std::string ResolvedSpecYaml(const JobSpec& spec) {
   if (spec.das.present) {
     ConfigNode da = MapNode();
     if (spec.das.layer >= 0) Put(da, "layer", Scalar(absl::StrCat(spec.das.layer)));
+    if (!spec.das.position.empty()) Put(da, "position", Scalar(spec.das.position, true));
     if (spec.das.dims > 0) Put(da, "dims", Scalar(absl::StrCat(spec.das.dims)));
     Put(da, "steps", Scalar(absl::StrCat(spec.das.steps)));
     Put(da, "lr", Scalar(FormatDouble(spec.das.lr)));
@@ -1250,26 +1496,41 @@ std::string Summarize(const ResolvedJob& job) {
     }
     out << "\n";
   }
-  int in_width = 0;
-  for (int i : m.inputs()) {
-    (void)i;
-    in_width += spec.network.embedding_dim;
-  }
-  out << "network: mlp, embeddings " << m.inputs().size() << " x " << spec.network.embedding_dim << " = "
-      << in_width << " (" << ToString(spec.network.embedding_init) << "), activation "
-      << ToString(spec.network.activation) << "\n";
-  for (size_t l = 0; l < spec.network.hidden.size(); ++l) {
-    out << "  layer " << l << ": " << spec.network.hidden[l] << " units";
-    std::vector<std::string> here;
-    for (const auto& s : spec.alignment) {
-      if (s.layer != static_cast<int>(l)) continue;
-      std::string units = s.units.size() > 1 && s.units.back() - s.units.front() + 1 == static_cast<int>(s.units.size())
-                              ? absl::StrCat(s.units.front(), "-", s.units.back())
-                              : absl::StrCat("[", absl::StrJoin(s.units, ","), "]");
-      here.push_back(absl::StrCat(s.variable, " = units ", units, " (", s.units.size(), ")"));
+  auto units_text = [](const std::vector<int>& units) {
+    return units.size() > 1 && units.back() - units.front() + 1 == static_cast<int>(units.size())
+               ? absl::StrCat(units.front(), "-", units.back())
+               : absl::StrCat("[", absl::StrJoin(units, ","), "]");
+  };
+  if (spec.network.is_transformer()) {
+    out << "network: transformer, " << m.inputs().size() + 1 << " tokens (one per input, then readout), width "
+        << spec.network.width << ", " << spec.network.heads << " heads, block MLP " << spec.network.mlp_width
+        << " (" << ToString(spec.network.activation) << ")\n";
+    for (int l = 0; l < spec.network.layers; ++l) {
+      out << "  layer " << l << ": residual stream after block " << l;
+      std::vector<std::string> here;
+      for (const auto& s : spec.alignment) {
+        if (s.layer != l) continue;
+        here.push_back(absl::StrCat(s.variable, " = ", absl::StrJoin(s.positions, ", "), " units ",
+                                    units_text(s.units), " (", s.units.size() * s.positions.size(), ")"));
+      }
+      if (!here.empty()) out << "; " << absl::StrJoin(here, "; ");
+      out << "\n";
     }
-    if (!here.empty()) out << "; " << absl::StrJoin(here, "; ");
-    out << "\n";
+  } else {
+    const int in_width = static_cast<int>(m.inputs().size()) * spec.network.embedding_dim;
+    out << "network: mlp, embeddings " << m.inputs().size() << " x " << spec.network.embedding_dim << " = "
+        << in_width << " (" << ToString(spec.network.embedding_init) << "), activation "
+        << ToString(spec.network.activation) << "\n";
+    for (size_t l = 0; l < spec.network.hidden.size(); ++l) {
+      out << "  layer " << l << ": " << spec.network.hidden[l] << " units";
+      std::vector<std::string> here;
+      for (const auto& s : spec.alignment) {
+        if (s.layer != static_cast<int>(l)) continue;
+        here.push_back(absl::StrCat(s.variable, " = units ", units_text(s.units), " (", s.units.size(), ")"));
+      }
+      if (!here.empty()) out << "; " << absl::StrJoin(here, "; ");
+      out << "\n";
+    }
   }
   out << "  output: " << m.variable(m.output()).domain.size() << " classes (" << m.variable(m.output()).name << ")\n";
   std::vector<std::string> set_names;

@@ -23,17 +23,29 @@ enum class OptimizerType { kAdam, kSgd };
 enum class SourceMode { kInBatch, kIndependent };
 
 struct NetworkSpec {
-  std::string type = "mlp";           // only "mlp" so far
+  std::string type = "mlp";           // "mlp" or "transformer"
+  bool is_transformer() const { return type == "transformer"; }
+  // mlp:
   int embedding_dim = 8;              // width of each input's embedding
   EmbeddingInit embedding_init = EmbeddingInit::kLearned;  // fixed_random: frozen N(0,1) rows
   std::vector<int> hidden = {64, 64, 64};                  // widths of the hidden layers
+  // transformer: one token per input (declaration order), then the readout token.
+  int width = 64;       // residual stream width (also each token's embedding width)
+  int layers = 2;       // pre-norm blocks
+  int heads = 4;        // attention heads; width must be divisible by heads
+  int mlp_width = 256;  // hidden width of each block's MLP
+  // Of the hidden layers (mlp) or of each block's MLP (transformer); default relu for an MLP,
+  // gelu for a transformer.
   Activation activation = Activation::kRelu;
 };
 
-// One aligned variable: units of the output of hidden layer `layer` (after the activation).
+// One aligned variable. MLP: units of the output of hidden layer `layer` (after the
+// activation). Transformer: units of the residual stream after block `layer`, at the token of
+// each of `positions` (an input's name or "readout"; the same units at every listed token).
 struct SiteSpec {
   std::string variable;
   int layer = 0;
+  std::vector<std::string> positions;  // transformer only: as written, distinct
   std::vector<int> units;  // ascending, distinct
   Location loc;            // of the variable's key in `alignment`
 };
@@ -73,6 +85,7 @@ struct EvaluationSpec {
 struct ScanSpec {
   bool present = false;         // the config has a `scan:` block
   std::vector<int> layers;      // layers to search; empty (default): every hidden layer
+  std::vector<std::string> positions;  // transformer: token positions to search; empty (default): all
   int block = 0;                // units per candidate; 0 (default): the variable's aligned unit count
   int stride = 0;               // step between block starts; 0 (default): the block size
   int random_subsets = 0;       // extra candidates per layer: random unit sets of the block size
@@ -86,6 +99,8 @@ struct ScanSpec {
 struct DasSpec {
   bool present = false;     // the config has a `das:` block
   int layer = -1;           // the rotated layer; -1 (default): the layer all aligned variables share
+  std::string position;     // transformer: the rotated token; empty (default): the one all aligned
+                            // variables share
   int dims = 0;             // rotated dimensions per variable; 0 (default): the aligned unit count
   int64_t steps = 400;      // optimiser steps of the rotation
   double lr = 0.01;         // Adam learning rate of the rotation's skew-symmetric generator
@@ -139,6 +154,10 @@ struct SpecLimits {
 // The network's trainable parameters for `spec` with the model's domain sizes: the embedding rows
 // (every input value), each hidden layer's weights and biases, and the output layer's.
 int64_t NetworkParameters(const JobSpec& spec, const causal::CausalModel& model);
+
+// The token of a transformer position: the input's place among the model's inputs (declaration
+// order), or the number of inputs for "readout"; -1 when it is neither.
+int TokenOf(const causal::CausalModel& model, const std::string& position);
 
 // Loads, overrides (each `key.path=value`), validates and resolves a config. Every error is
 // InvalidArgument with one line per problem: "FILE:LINE:COL: message" (or "--set #N:1:COL: ...").

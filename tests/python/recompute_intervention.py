@@ -1,5 +1,6 @@
 #!/usr/bin/python3
-"""Independent float64 recomputation of a graft MLP's base and intervened logits.
+"""Independent float64 recomputation of a graft network's base and intervened logits (MLP or
+transformer).
 
 Usage: /usr/bin/python3 recompute_intervention.py RUN_DIR [--recount]
 
@@ -21,10 +22,31 @@ RUN_DIR holds what graft wrote after training:
                variables a set intervenes on comes from spec.yaml's training.interventions.
   result.json  only with --recount: the final held-out figures graft reported.
 
-The model, recomputed here with NumPy in float64 from the weights alone:
+For a transformer (network.type: transformer) spec.yaml gives network.width, network.layers,
+network.heads, network.mlp_width and network.activation, and each alignment entry
+{layer: K, position: NAME or [NAMES], units: [...]}; weights.pt holds exactly embed.<input>
+[values, width], pos [tokens, width], readout [width], block.<k>.ln1.weight|bias,
+block.<k>.attn.in_proj.weight [3 width, width] and .bias [3 width], block.<k>.attn.out_proj.weight
+[width, width] and .bias, block.<k>.ln2.weight|bias, block.<k>.mlp.fc.weight [mlp_width, width]
+and .bias, block.<k>.mlp.proj.weight [width, mlp_width] and .bias, ln_final.weight|bias,
+out.weight [classes, width], out.bias (the README's table).
+
+The MLP, recomputed here with NumPy in float64 from the weights alone:
   x   = concatenation over inputs (in declaration order) of embed.<input>[value index]
   h_k = act(W_k h_{k-1} + b_k), h_{-1} = x;  logits = out.weight @ h_last + out.bias
   gelu is the exact form x * 0.5 * (1 + erf(x / sqrt(2))) (scipy.special.erf).
+The transformer, from the same formulas written out (NumPy, float64):
+  tokens t = 0..I-1 are the inputs in declaration order, token I is the readout:
+  x_t = embed.<input t>[value index] + pos[t],  x_I = readout + pos[I]
+  per block k:  x = x + Attn(LN1(x));  x = x + MLP(LN2(x)), where
+    LN(z) = (z - mean(z)) / sqrt(var(z) + 1e-5) * weight + bias (population variance, per token)
+    [q | k | v] = z @ in_proj.weight^T + in_proj.bias (rows of in_proj.weight: q, then k, then v)
+    per head h of d = width / heads columns: A_h = softmax(q_h k_h^T / sqrt(d)) over all tokens
+    Attn(z) = concat_h(A_h v_h) @ out_proj.weight^T + out_proj.bias
+    MLP(z) = act(z @ fc.weight^T + fc.bias) @ proj.weight^T + proj.bias
+  logits = out.weight @ LN_final(x_I) + out.bias
+  Layer k is the residual stream after block k; an aligned site (position p, unit u) is
+  x_p[u] there.
 The interchange intervention (base b, source s, set V): run s and keep its activations h^s_k;
 run b, and for k from 0 upward, after computing h_k overwrite the units of every variable of V
 aligned at layer k with h^s_k at those units, then continue from the overwritten h_k.
@@ -131,15 +153,31 @@ def read_spec(run_dir, yaml):
         algo = spec["algorithm"]
         inputs = algo["inputs"]
         net = spec["network"]
-        dim = net["embedding"]["dim"]
-        hidden = net["hidden"]
+        kind = net["type"]
         activation = net["activation"]
+        transformer = None
+        if kind == "transformer":
+            transformer = {k: net[k] for k in ("width", "layers", "heads", "mlp_width")}
+            dim = transformer["width"]
+            hidden = None
+        else:
+            dim = net["embedding"]["dim"]
+            hidden = net["hidden"]
     except (KeyError, TypeError) as e:
         raise CheckFailed(f"{path}: missing key {e}") from None
+    require(kind in ("mlp", "transformer"), f"{path}: unknown network.type {kind!r}")
     require(isinstance(inputs, dict) and inputs, f"{path}: algorithm.inputs must be a non-empty map")
-    require(isinstance(dim, int) and dim > 0, f"{path}: network.embedding.dim must be a positive integer")
-    require(isinstance(hidden, list) and hidden and all(isinstance(w, int) and w > 0 for w in hidden),
-            f"{path}: network.hidden must be a non-empty list of positive widths")
+    require(isinstance(dim, int) and dim > 0, f"{path}: the embedding width must be a positive integer")
+    if transformer is not None:
+        require(all(isinstance(v, int) and v > 0 for v in transformer.values()),
+                f"{path}: network.width, layers, heads and mlp_width must be positive integers")
+        require(transformer["width"] % transformer["heads"] == 0, f"{path}: width not divisible by heads")
+        # The site layers as columns of the flattened residual stream: tokens x width.
+        hidden_columns = [(len(inputs) + 1) * dim] * transformer["layers"]
+    else:
+        require(isinstance(hidden, list) and hidden and all(isinstance(w, int) and w > 0 for w in hidden),
+                f"{path}: network.hidden must be a non-empty list of positive widths")
+        hidden_columns = hidden
     require(activation in ("relu", "gelu", "tanh"), f"{path}: unknown network.activation {activation!r}")
     names = [str(n) for n in inputs]
     sizes = [domain_size(str(n), d) for n, d in inputs.items()]
@@ -156,11 +194,20 @@ def read_spec(run_dir, yaml):
         require(isinstance(site, dict) and "layer" in site and "units" in site,
                 f"{path}: alignment.{variable}: expected {{layer, units}}")
         layer = site["layer"]
-        require(isinstance(layer, int) and 0 <= layer < len(hidden),
-                f"{path}: alignment.{variable}.layer {layer!r} is not a layer of network.hidden {hidden}")
+        require(isinstance(layer, int) and 0 <= layer < len(hidden_columns),
+                f"{path}: alignment.{variable}.layer {layer!r} is not one of the network's {len(hidden_columns)} layers")
         units = parse_units(variable, site["units"])
-        require(all(0 <= u < hidden[layer] for u in units),
-                f"{path}: alignment.{variable}.units {units} fall outside layer {layer} (width {hidden[layer]})")
+        if transformer is not None:
+            positions = site.get("position")
+            positions = positions if isinstance(positions, list) else [positions]
+            tokens = names + ["readout"]
+            require(all(p in tokens for p in positions),
+                    f"{path}: alignment.{variable}.position {positions!r} names no token of {tokens}")
+            require(all(0 <= u < dim for u in units),
+                    f"{path}: alignment.{variable}.units {units} fall outside the width {dim}")
+            units = sorted(tokens.index(p) * dim + u for p in positions for u in units)
+        require(all(0 <= u < hidden_columns[layer] for u in units),
+                f"{path}: alignment.{variable}.units {units} fall outside layer {layer} (width {hidden_columns[layer]})")
         alignment[str(variable)] = (layer, units)
 
     # The algorithm's expressions and declaration order (inputs, then mechanisms).
@@ -201,6 +248,7 @@ def read_spec(run_dir, yaml):
         sets["+".join(ordered)] = ordered
 
     return {"names": names, "sizes": sizes, "dim": dim, "hidden": hidden, "activation": activation,
+            "transformer": transformer,
             "classes": classes, "alignment": alignment, "sets": sets, "inputs": inputs, "exprs": exprs,
             "symbols": symbols, "output_name": output_name, "output_expr": output_expr,
             "class_names": class_names, "path": path}
@@ -223,11 +271,28 @@ def read_weights(run_dir, spec, np, torch):
     expected = {}
     for name, size in zip(spec["names"], spec["sizes"]):
         expected[f"embed.{name}"] = (size, spec["dim"])
-    width_in = len(spec["names"]) * spec["dim"]
-    for k, width in enumerate(spec["hidden"]):
-        expected[f"hidden.{k}.weight"] = (width, width_in)
-        expected[f"hidden.{k}.bias"] = (width,)
-        width_in = width
+    if spec["transformer"] is not None:
+        t = spec["transformer"]
+        w, m = t["width"], t["mlp_width"]
+        expected["pos"] = (len(spec["names"]) + 1, w)
+        expected["readout"] = (w,)
+        for k in range(t["layers"]):
+            p = f"block.{k}."
+            expected.update({p + "ln1.weight": (w,), p + "ln1.bias": (w,),
+                             p + "attn.in_proj.weight": (3 * w, w), p + "attn.in_proj.bias": (3 * w,),
+                             p + "attn.out_proj.weight": (w, w), p + "attn.out_proj.bias": (w,),
+                             p + "ln2.weight": (w,), p + "ln2.bias": (w,),
+                             p + "mlp.fc.weight": (m, w), p + "mlp.fc.bias": (m,),
+                             p + "mlp.proj.weight": (w, m), p + "mlp.proj.bias": (w,)})
+        expected["ln_final.weight"] = (w,)
+        expected["ln_final.bias"] = (w,)
+        width_in = w
+    else:
+        width_in = len(spec["names"]) * spec["dim"]
+        for k, width in enumerate(spec["hidden"]):
+            expected[f"hidden.{k}.weight"] = (width, width_in)
+            expected[f"hidden.{k}.bias"] = (width,)
+            width_in = width
     expected["out.weight"] = (num_classes, width_in)
     expected["out.bias"] = (num_classes,)
 
@@ -292,7 +357,6 @@ def check(spec, weights, num_classes, dump, np, act):
         require(np.all(np.isfinite(arr)), f"logits.json: {label} has non-finite values")
 
     embed = [weights[f"embed.{n}"] for n in names]
-    layers = [(weights[f"hidden.{k}.weight"], weights[f"hidden.{k}.bias"]) for k in range(len(spec["hidden"]))]
     head_w, head_b = weights["out.weight"], weights["out.bias"]
 
     def indices(triple, key):
@@ -306,8 +370,9 @@ def check(spec, weights, num_classes, dump, np, act):
     def embed_row(values):
         return np.concatenate([e[v] for e, v in zip(embed, values)])
 
-    def run(values, overwrite=None):
+    def run_mlp(values, overwrite=None):
         """Activations of every layer and the logits; `overwrite[k]` = (units, values) at layer k."""
+        layers = [(weights[f"hidden.{k}.weight"], weights[f"hidden.{k}.bias"]) for k in range(len(spec["hidden"]))]
         h = embed_row(values)
         acts = []
         for k, (w, b) in enumerate(layers):
@@ -318,6 +383,43 @@ def check(spec, weights, num_classes, dump, np, act):
                     h[units] = src[units]
             acts.append(h)
         return acts, head_w @ h + head_b
+
+    def layer_norm(z, prefix):
+        mean = z.mean(axis=-1, keepdims=True)
+        var = ((z - mean) ** 2).mean(axis=-1, keepdims=True)
+        return (z - mean) / np.sqrt(var + 1e-5) * weights[prefix + ".weight"] + weights[prefix + ".bias"]
+
+    def softmax(z):
+        e = np.exp(z - z.max(axis=-1, keepdims=True))
+        return e / e.sum(axis=-1, keepdims=True)
+
+    def run_transformer(values, overwrite=None):
+        """The residual stream after every block, flattened [tokens * width], and the logits."""
+        t = spec["transformer"]
+        w, heads = t["width"], t["heads"]
+        d = w // heads
+        x = np.stack([e[v] for e, v in zip(embed, values)] + [weights["readout"]]) + weights["pos"]
+        acts = []
+        for k in range(t["layers"]):
+            p = f"block.{k}."
+            z = layer_norm(x, p + "ln1")
+            qkv = z @ weights[p + "attn.in_proj.weight"].T + weights[p + "attn.in_proj.bias"]
+            q, key, v = qkv[:, :w], qkv[:, w:2 * w], qkv[:, 2 * w:]
+            context = np.concatenate([softmax(q[:, h * d:(h + 1) * d] @ key[:, h * d:(h + 1) * d].T / math.sqrt(d))
+                                      @ v[:, h * d:(h + 1) * d] for h in range(heads)], axis=1)
+            x = x + context @ weights[p + "attn.out_proj.weight"].T + weights[p + "attn.out_proj.bias"]
+            z = layer_norm(x, p + "ln2")
+            hidden = act(z @ weights[p + "mlp.fc.weight"].T + weights[p + "mlp.fc.bias"])
+            x = x + hidden @ weights[p + "mlp.proj.weight"].T + weights[p + "mlp.proj.bias"]
+            flat = x.reshape(-1).copy()
+            if overwrite and k in overwrite:
+                for units, src in overwrite[k]:
+                    flat[units] = src[units]
+                x = flat.reshape(x.shape)
+            acts.append(flat)
+        return acts, head_w @ layer_norm(x[-1], "ln_final") + head_b
+
+    run = run_transformer if spec["transformer"] is not None else run_mlp
 
     base_mine = np.empty_like(base_dumped)
     inter_mine = np.empty_like(inter_dumped)

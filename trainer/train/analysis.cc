@@ -18,7 +18,7 @@
 #include "absl/strings/str_join.h"
 #include "trainer/causal/rng.h"
 #include "trainer/eval/wilson.h"
-#include "trainer/net/mlp.h"
+#include "trainer/net/network.h"
 #include "trainer/net/rotation.h"
 #include "trainer/train/evaluation.h"
 
@@ -44,7 +44,7 @@ void SetThreads(int threads) {
 
 // Loads a dict of tensors (LibTorch's pickle_save or Python's torch.save) into `net`, whose
 // parameters it must fit exactly.
-absl::Status LoadWeights(const std::string& path, net::MlpImpl& net) {
+absl::Status LoadWeights(const std::string& path, net::SiteNetworkImpl& net) {
   std::ifstream in(path, std::ios::binary);
   if (!in) return absl::NotFoundError(absl::StrCat(path, ": cannot open the weights file"));
   std::vector<char> bytes((std::istreambuf_iterator<char>(in)), std::istreambuf_iterator<char>());
@@ -127,10 +127,10 @@ std::string UnitsText(const std::vector<int>& units) {
   return absl::StrJoin(units, ",");
 }
 
-absl::StatusOr<net::Mlp> LoadNetwork(const config::ResolvedJob& job, const AnalysisOptions& options) {
+absl::StatusOr<net::SiteNetwork> LoadNetwork(const config::ResolvedJob& job, const AnalysisOptions& options) {
   if (options.weights_path.empty()) return absl::InvalidArgumentError("--weights FILE is required");
   SetThreads(job.spec.training.threads);
-  net::Mlp net = CreateMlp(job);
+  net::SiteNetwork net = CreateNetwork(job);
   absl::Status st = LoadWeights(options.weights_path, *net);
   if (!st.ok()) return st;
   return net;
@@ -141,6 +141,8 @@ absl::StatusOr<net::Mlp> LoadNetwork(const config::ResolvedJob& job, const Analy
 
 struct Candidate {
   int layer = 0;
+  std::string position;  // transformer: the token's name; empty for an MLP
+  int token = 0;         // transformer: the token's index
   bool random = false;
   int block_index = -1;  // contiguous blocks: position in the layer; random subsets: -1
   std::vector<int> units;
@@ -173,21 +175,30 @@ std::string XmlEscape(const std::string& s) {
 
 // One panel per variable: rows are layers, columns contiguous blocks; the cell shows IIA on
 // changed cases; the best candidate is outlined.
+// A transformer's scan has one panel per variable and position ("VAR at POSITION: ...").
 std::string ScanSvg(const std::vector<std::string>& variables, const std::vector<std::vector<Candidate>>& all,
                     const std::vector<int>& best) {
   const int cell = 36, left = 70, top = 40, panel_gap = 50;
   int width = 420, y = 10;
   std::ostringstream body;
   for (size_t v = 0; v < variables.size(); ++v) {
+   std::vector<std::string> positions;
+   for (const auto& c : all[v]) {
+     if (!c.random && std::find(positions.begin(), positions.end(), c.position) == positions.end()) {
+       positions.push_back(c.position);
+     }
+   }
+   for (const std::string& position : positions) {
     std::vector<int> layers;
     int columns = 0;
     for (const auto& c : all[v]) {
-      if (c.random) continue;
+      if (c.random || c.position != position) continue;
       if (std::find(layers.begin(), layers.end(), c.layer) == layers.end()) layers.push_back(c.layer);
       columns = std::max(columns, c.block_index + 1);
     }
     width = std::max(width, left + columns * cell + 20);
     body << "<text x=\"10\" y=\"" << y + 20 << "\" font-size=\"14\" font-weight=\"bold\">" << XmlEscape(variables[v])
+         << (position.empty() ? std::string() : " at " + XmlEscape(position))
          << ": IIA on changed cases by layer and unit block</text>\n";
     const int y0 = y + top;
     for (size_t r = 0; r < layers.size(); ++r) {
@@ -196,7 +207,7 @@ std::string ScanSvg(const std::vector<std::string>& variables, const std::vector
     }
     for (size_t i = 0; i < all[v].size(); ++i) {
       const Candidate& c = all[v][i];
-      if (c.random) continue;
+      if (c.random || c.position != position) continue;
       const int row = static_cast<int>(std::find(layers.begin(), layers.end(), c.layer) - layers.begin());
       const int x = left + c.block_index * cell, yy = y0 + row * cell;
       const double value = c.changed.value;
@@ -216,6 +227,7 @@ std::string ScanSvg(const std::vector<std::string>& variables, const std::vector
     body << "<text x=\"" << left << "\" y=\"" << y0 + layers.size() * cell + 30
          << "\" font-size=\"11\">unit block (block i starts at unit i x stride); red outline: best site</text>\n";
     y = y0 + static_cast<int>(layers.size()) * cell + panel_gap;
+   }
   }
   std::ostringstream svg;
   svg << "<svg xmlns=\"http://www.w3.org/2000/svg\" width=\"" << width << "\" height=\"" << y
@@ -224,7 +236,7 @@ std::string ScanSvg(const std::vector<std::string>& variables, const std::vector
   return svg.str();
 }
 
-absl::StatusOr<std::string> ScanNetwork(const config::ResolvedJob& job, net::MlpImpl& net, const std::string& out_dir,
+absl::StatusOr<std::string> ScanNetwork(const config::ResolvedJob& job, net::SiteNetworkImpl& net, const std::string& out_dir,
                                         std::ostream* progress) {
   if (job.spec.alignment.empty()) {
     return absl::InvalidArgumentError("scan: the config aligns no variable; add the variables to scan to 'alignment'");
@@ -232,10 +244,20 @@ absl::StatusOr<std::string> ScanNetwork(const config::ResolvedJob& job, net::Mlp
   c10::InferenceMode guard;
   const config::ScanSpec& sc = job.spec.scan;
   const auto& model = *job.model;
-  const auto& widths = job.spec.network.hidden;
+  const std::vector<int> columns = LayerColumns(job);
+  const bool transformer = job.spec.network.is_transformer();
   std::vector<int> layers = sc.layers;
   if (layers.empty()) {
-    for (size_t l = 0; l < widths.size(); ++l) layers.push_back(static_cast<int>(l));
+    for (size_t l = 0; l < columns.size(); ++l) layers.push_back(static_cast<int>(l));
+  }
+  // The token positions searched (a transformer's; an MLP has one unnamed group per layer).
+  std::vector<std::string> positions = {""};
+  if (transformer) {
+    positions = sc.positions;
+    if (positions.empty()) {
+      for (int i : model.inputs()) positions.push_back(model.variable(i).name);
+      positions.push_back("readout");
+    }
   }
   std::vector<std::string> variables;
   std::vector<std::vector<Candidate>> all;
@@ -245,7 +267,7 @@ absl::StatusOr<std::string> ScanNetwork(const config::ResolvedJob& job, net::Mlp
   report["ranked_by"] = "iia_changed_held_out";
   ReportJson by_var = ReportJson::object();
   std::ostringstream table, summary;
-  table << "variable\tlayer\tkind\tunits\tiia\tiia_lo\tiia_hi\tn\tiia_changed\tchanged_lo\tchanged_hi\tchanged_n\n";
+  table << "variable\tlayer\t" << (transformer ? "position\t" : "") << "kind\tunits\tiia\tiia_lo\tiia_hi\tn\tiia_changed\tchanged_lo\tchanged_hi\tchanged_n\n";
   for (size_t a = 0; a < job.spec.alignment.size(); ++a) {
     const config::SiteSpec& site = job.spec.alignment[a];
     const int v = model.Find(site.variable);
@@ -271,13 +293,20 @@ absl::StatusOr<std::string> ScanNetwork(const config::ResolvedJob& job, net::Mlp
     std::vector<Candidate> cands;
     causal::Rng rng(job.spec.seed, 0x5CA7 + a);
     for (int layer : layers) {
-      const int width = widths[layer];
+     for (const std::string& position : positions) {
+      // After the last block only the readout token reaches the logits (the validator refuses
+      // other positions there), so the other tokens of the last layer are not candidates.
+      if (transformer && layer == net.num_layers() - 1 && position != "readout") continue;
+      const int width = transformer ? job.spec.network.width : columns[layer];
       const int block = std::min(width, sc.block > 0 ? sc.block : static_cast<int>(site.units.size()));
       const int stride = sc.stride > 0 ? sc.stride : block;
+      const int token = transformer ? config::TokenOf(model, position) : 0;
       int index = 0;
       for (int start = 0; start + block <= width; start += stride) {
         Candidate c;
         c.layer = layer;
+        c.position = position;
+        c.token = token;
         c.block_index = index++;
         for (int u = start; u < start + block; ++u) c.units.push_back(u);
         cands.push_back(std::move(c));
@@ -288,21 +317,29 @@ absl::StatusOr<std::string> ScanNetwork(const config::ResolvedJob& job, net::Mlp
         rng.Shuffle(pool);
         Candidate c;
         c.layer = layer;
+        c.position = position;
+        c.token = token;
         c.random = true;
         c.units.assign(pool.begin(), pool.begin() + block);
         std::sort(c.units.begin(), c.units.end());
         cands.push_back(std::move(c));
       }
+     }
+    }
+    if (cands.empty()) {
+      return absl::InvalidArgumentError("scan: no candidate site: at the last layer only the readout token is "
+                                        "searched; add readout or an earlier layer to the scan");
     }
     int best_index = -1;
     for (size_t i = 0; i < cands.size(); ++i) {
       Candidate& c = cands[i];
       net::InterventionMasks masks;
       masks.lowest_layer = c.layer;
-      masks.per_layer.resize(widths.size());
-      Tensor m = torch::zeros({widths[c.layer]}, torch::kBool);
-      for (int u : c.units) m[u] = true;
-      masks.per_layer[c.layer] = m.unsqueeze(0).expand({b_in.size(0), widths[c.layer]});
+      masks.per_layer.resize(columns.size());
+      Tensor m = torch::zeros({columns[c.layer]}, torch::kBool);
+      const int offset = transformer ? c.token * job.spec.network.width : 0;
+      for (int u : c.units) m[offset + u] = true;
+      masks.per_layer[c.layer] = m.unsqueeze(0).expand({b_in.size(0), columns[c.layer]});
       Tensor ok = net.Intervened(hb, hs, masks).argmax(1).eq(cf);
       c.iia = eval::WilsonAccuracy(ok.sum().item<int64_t>(), ok.size(0));
       c.changed = eval::WilsonAccuracy((ok & changed).sum().item<int64_t>(), changed_n);
@@ -312,29 +349,34 @@ absl::StatusOr<std::string> ScanNetwork(const config::ResolvedJob& job, net::Mlp
       }
       if (progress != nullptr && ((i + 1) % 16 == 0 || i + 1 == cands.size())) {
         *progress << "scan " << site.variable << ": " << i + 1 << "/" << cands.size() << " candidates; best so far layer "
-                  << cands[best_index].layer << " units " << UnitsText(cands[best_index].units) << " changed IIA "
+                  << cands[best_index].layer << (transformer ? " at " + cands[best_index].position : std::string())
+                  << " units " << UnitsText(cands[best_index].units) << " changed IIA "
                   << Fixed(cands[best_index].changed.value) << "\n"
                   << std::flush;
       }
-      table << site.variable << "\t" << c.layer << "\t" << (c.random ? "random" : "block") << "\t" << UnitsText(c.units)
+      table << site.variable << "\t" << c.layer << "\t" << (transformer ? c.position + "\t" : std::string()) << (c.random ? "random" : "block") << "\t" << UnitsText(c.units)
             << "\t" << c.iia.value << "\t" << c.iia.lo << "\t" << c.iia.hi << "\t" << c.iia.n << "\t" << c.changed.value
             << "\t" << c.changed.lo << "\t" << c.changed.hi << "\t" << c.changed.n << "\n";
     }
     ReportJson list = ReportJson::array();
     for (const auto& c : cands) {
-      list.push_back(ReportJson{{"layer", c.layer},
-                                {"kind", c.random ? "random" : "block"},
-                                {"units", c.units},
-                                {"iia", AccuracyReport(c.iia)},
-                                {"iia_changed", AccuracyReport(c.changed)}});
+      ReportJson j{{"layer", c.layer}};
+      if (transformer) j["position"] = c.position;
+      j["kind"] = c.random ? "random" : "block";
+      j["units"] = c.units;
+      j["iia"] = AccuracyReport(c.iia);
+      j["iia_changed"] = AccuracyReport(c.changed);
+      list.push_back(std::move(j));
     }
     const Candidate& top = cands[best_index];
     ReportJson entry;
     entry["aligned_site"] = ReportJson{{"layer", site.layer}, {"units", site.units}};
+    if (transformer) entry["aligned_site"]["position"] = site.positions;
     entry["best"] = list[best_index];
     entry["candidates"] = list;
     by_var[site.variable] = entry;
-    summary << site.variable << ": best site layer " << top.layer << " units " << UnitsText(top.units)
+    summary << site.variable << ": best site layer " << top.layer
+            << (transformer ? " at " + top.position : std::string()) << " units " << UnitsText(top.units)
             << (top.random ? " (random subset)" : "") << ", IIA on changed cases "
             << AccuracyText(AccuracyReport(top.changed)) << ", overall " << AccuracyText(AccuracyReport(top.iia))
             << " (" << cands.size() << " candidates)\n";
@@ -364,12 +406,17 @@ struct DasOutcome {
 };
 
 // Trains a rotation of `layer` with `net` frozen, then evaluates it on the held-out triples.
-DasOutcome SearchRotation(const config::ResolvedJob& job, net::MlpImpl& net, const std::vector<int>& offsets,
+// A transformer's rotation turns the residual stream of one token (das.position): the columns
+// token * width ... + width of the layer's activation.
+DasOutcome SearchRotation(const config::ResolvedJob& job, net::SiteNetworkImpl& net, const std::vector<int>& offsets,
                           const std::vector<int>& dims, const std::string& label, std::ostream* progress) {
   const config::DasSpec& d = job.spec.das;
   const auto& model = *job.model;
   const int layer = d.layer;
-  const int width = job.spec.network.hidden[layer];
+  const bool transformer = job.spec.network.is_transformer();
+  const int width = transformer ? job.spec.network.width : job.spec.network.hidden[layer];
+  const int64_t first = transformer ? int64_t{config::TokenOf(model, d.position)} * width : 0;
+  const int64_t columns = LayerColumns(job)[layer];
   const int num_sets = static_cast<int>(job.sets.size());
   for (auto& p : net.parameters()) p.set_requires_grad(false);
   // Rotated dimensions of each set.
@@ -388,7 +435,13 @@ DasOutcome SearchRotation(const config::ResolvedJob& job, net::MlpImpl& net, con
       hb = net.Hidden(net.Embed(b_in), layer);
       hs = net.Hidden(net.Embed(s_in), layer);
     }
-    Tensor h = rot.Interchange(hb[layer], hs[layer], set_masks.index_select(0, z));
+    Tensor turned = rot.Interchange(hb[layer].narrow(1, first, width), hs[layer].narrow(1, first, width),
+                                    set_masks.index_select(0, z));
+    Tensor h = first == 0 && width == columns
+                   ? turned
+                   : torch::cat({hb[layer].narrow(1, 0, first), turned,
+                                 hb[layer].narrow(1, first + width, columns - first - width)},
+                                1);
     for (int k = layer + 1; k < net.num_layers(); ++k) h = net.Layer(k, h);
     return net.Head(h);
   };
@@ -449,9 +502,9 @@ absl::StatusOr<std::string> EvaluateStored(const config::ResolvedJob& job, const
     SetThreads(job.spec.training.threads);
     LabelTables labels(*job.model, job.sets);
     EvalInputs inputs = CreateEvalInputs(job);
-    net::Mlp net = CreateMlp(job);
+    net::SiteNetwork net = CreateNetwork(job);
     const std::vector<UnitSite> sites = AlignmentSites(job);
-    const UnitMasks masks(job.sets, sites, job.spec.network.hidden);
+    const UnitMasks masks(job.sets, sites, LayerColumns(job));
     auto logits = [&](const Tensor& b, const Tensor& s, const Tensor& z) { return masks.Logits(*net, b, s, z, nullptr); };
     ReportJson step0;
     {
@@ -522,6 +575,16 @@ absl::StatusOr<std::string> DasStored(const config::ResolvedJob& job, const Anal
       }
       d.layer = job.spec.alignment.front().layer;
     }
+    if (job.spec.network.is_transformer() && d.position.empty()) {  // no das: block: the position all share
+      for (const auto& site : job.spec.alignment) {
+        if (site.positions.size() != 1 || site.positions != job.spec.alignment.front().positions) {
+          return absl::InvalidArgumentError(
+              "das: the aligned variables do not sit at one position; add a das: block with das.position");
+        }
+      }
+      d.position = job.spec.alignment.front().positions.front();
+    }
+    const int width = job.spec.network.is_transformer() ? job.spec.network.width : job.spec.network.hidden[d.layer];
     std::vector<int> offsets, dims;
     int at = 0;
     for (const auto& site : job.spec.alignment) {
@@ -530,17 +593,18 @@ absl::StatusOr<std::string> DasStored(const config::ResolvedJob& job, const Anal
       dims.push_back(k);
       at += k;
     }
-    if (at > job.spec.network.hidden[d.layer]) {
+    if (at > width) {
       return absl::InvalidArgumentError(absl::StrCat("das: ", at, " rotated dimensions do not fit in layer ", d.layer,
-                                                     " (", job.spec.network.hidden[d.layer], " units)"));
+                                                     " (", width, " units)"));
     }
     DasOutcome real = SearchRotation(resolved, **trained, offsets, dims, "trained network", options.progress);
-    net::Mlp untrained = CreateMlp(job);
+    net::SiteNetwork untrained = CreateNetwork(job);
     DasOutcome control = SearchRotation(resolved, *untrained, offsets, dims, "untrained network (control)",
                                         options.progress);
     ReportJson r;
     r["weights"] = options.weights_path;
     r["layer"] = d.layer;
+    if (!d.position.empty()) r["position"] = d.position;
     ReportJson slices = ReportJson::object();
     for (size_t a = 0; a < job.spec.alignment.size(); ++a) {
       slices[job.spec.alignment[a].variable] = ReportJson{{"first", offsets[a]}, {"count", dims[a]}};
@@ -566,7 +630,8 @@ absl::StatusOr<std::string> DasStored(const config::ResolvedJob& job, const Anal
     st = WriteFileAtomically((fs::path(options.out_dir) / "rotation.pt").string(), std::string(bytes.begin(), bytes.end()));
     if (!st.ok()) return st;
     std::ostringstream s;
-    s << "DAS at layer " << d.layer << ", " << d.steps << " steps\n";
+    s << "DAS at layer " << d.layer << (d.position.empty() ? std::string() : " at " + d.position) << ", " << d.steps
+      << " steps\n";
     s << "trained network:   IIA " << AccuracyText(real.metrics["iia_held_out"]) << ", changed "
       << AccuracyText(real.metrics["iia_changed_held_out"]) << "\n";
     s << "untrained control: IIA " << AccuracyText(control.metrics["iia_held_out"]) << ", changed "

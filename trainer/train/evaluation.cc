@@ -7,10 +7,29 @@
 
 #include "absl/strings/str_cat.h"
 #include "trainer/causal/rng.h"
+#include "trainer/net/transformer.h"
 
 namespace graft::train {
 
 using torch::Tensor;
+
+std::vector<int> SiteColumns(const config::ResolvedJob& job, const config::SiteSpec& site) {
+  if (!job.spec.network.is_transformer()) return site.units;
+  std::vector<int> columns;
+  for (const auto& p : site.positions) {
+    const int token = config::TokenOf(*job.model, p);
+    for (int u : site.units) columns.push_back(token * job.spec.network.width + u);
+  }
+  std::sort(columns.begin(), columns.end());
+  return columns;
+}
+
+std::vector<int> LayerColumns(const config::ResolvedJob& job) {
+  const config::NetworkSpec& n = job.spec.network;
+  if (!n.is_transformer()) return n.hidden;
+  const int tokens = static_cast<int>(job.model->inputs().size()) + 1;
+  return std::vector<int>(n.layers, tokens * n.width);
+}
 
 std::vector<UnitSite> AlignmentSites(const config::ResolvedJob& job) {
   std::vector<UnitSite> sites(job.model->num_variables());
@@ -18,7 +37,7 @@ std::vector<UnitSite> AlignmentSites(const config::ResolvedJob& job) {
     const int s = job.site_of_variable[v];
     if (s < 0) continue;
     sites[v].layer = job.spec.alignment[s].layer;
-    sites[v].units = job.spec.alignment[s].units;
+    sites[v].units = SiteColumns(job, job.spec.alignment[s]);
   }
   return sites;
 }
@@ -50,7 +69,7 @@ net::InterventionMasks UnitMasks::ForSets(const Tensor& set_index) const {
   return masks;
 }
 
-Tensor UnitMasks::Logits(net::MlpImpl& net, const Tensor& base_in, const Tensor& source_in, const Tensor& set_index,
+Tensor UnitMasks::Logits(net::SiteNetworkImpl& net, const Tensor& base_in, const Tensor& source_in, const Tensor& set_index,
                          Tensor* base_logits) const {
   const int last = net.num_layers() - 1;
   std::vector<Tensor> base = net.Hidden(net.Embed(base_in), last);
@@ -74,6 +93,25 @@ net::Mlp CreateMlp(const config::ResolvedJob& job) {
   o.num_classes = model.variable(model.output()).domain.size();
   torch::manual_seed(job.spec.seed);
   return net::Mlp(o);
+}
+
+net::SiteNetwork CreateNetwork(const config::ResolvedJob& job) {
+  if (!job.spec.network.is_transformer()) return CreateMlp(job).ptr();
+  const auto& model = *job.model;
+  const config::NetworkSpec& n = job.spec.network;
+  net::TransformerOptions o;
+  for (int i : model.inputs()) {
+    o.input_sizes.push_back(model.variable(i).domain.size());
+    o.input_names.push_back(model.variable(i).name);
+  }
+  o.width = n.width;
+  o.layers = n.layers;
+  o.heads = n.heads;
+  o.mlp_width = n.mlp_width;
+  o.activation = static_cast<net::ActivationKind>(static_cast<int>(n.activation));
+  o.num_classes = model.variable(model.output()).domain.size();
+  torch::manual_seed(job.spec.seed);
+  return std::make_shared<net::TransformerImpl>(o);
 }
 
 EvalInputs CreateEvalInputs(const config::ResolvedJob& job) {
@@ -213,7 +251,7 @@ ReportJson EvaluateTriples(const causal::CausalModel& model, const std::vector<c
   return m;
 }
 
-ReportJson EvaluateNetwork(const config::ResolvedJob& job, net::MlpImpl& net, const LabelTables& labels,
+ReportJson EvaluateNetwork(const config::ResolvedJob& job, net::SiteNetworkImpl& net, const LabelTables& labels,
                            const EvalInputs& inputs, const IntervenedLogitsFn& logits) {
   const int out = job.model->output();
   auto task_accuracy = [&](const Tensor& numbers) {
@@ -232,40 +270,56 @@ ReportJson EvaluateNetwork(const config::ResolvedJob& job, net::MlpImpl& net, co
 }
 
 std::vector<UnitSite> RandomUnitSites(const config::ResolvedJob& job) {
-  const std::vector<UnitSite> real = AlignmentSites(job);
-  std::vector<UnitSite> control(real.size());
-  causal::Rng rng(job.spec.seed, 0xC047);
-  std::vector<std::set<int>> taken_real(job.spec.network.hidden.size()), taken(job.spec.network.hidden.size());
-  for (const auto& s : real) {
-    if (s.layer >= 0) taken_real[s.layer].insert(s.units.begin(), s.units.end());
+  const config::JobSpec& spec = job.spec;
+  const bool transformer = spec.network.is_transformer();
+  const int layers = transformer ? spec.network.layers : static_cast<int>(spec.network.hidden.size());
+  std::vector<UnitSite> control(job.model->num_variables());
+  causal::Rng rng(spec.seed, 0xC047);
+  // Units taken per (layer, token): an MLP has one token per layer.
+  const int tokens = transformer ? static_cast<int>(job.model->inputs().size()) + 1 : 1;
+  std::vector<std::set<int>> taken_real(layers * tokens), taken(layers * tokens);
+  auto token_of = [&](const std::string& p) { return transformer ? config::TokenOf(*job.model, p) : 0; };
+  for (const auto& site : spec.alignment) {
+    const std::vector<std::string> ps = transformer ? site.positions : std::vector<std::string>{""};
+    for (const auto& p : ps) taken_real[site.layer * tokens + token_of(p)].insert(site.units.begin(), site.units.end());
   }
   // In alignment order, so the draw does not depend on variable numbering.
-  for (const auto& site : job.spec.alignment) {
+  for (const auto& site : spec.alignment) {
     const int v = job.model->Find(site.variable);
     const int layer = site.layer;
-    const int width = job.spec.network.hidden[layer];
+    const int width = transformer ? spec.network.width : spec.network.hidden[layer];
+    const std::vector<std::string> ps = transformer ? site.positions : std::vector<std::string>{""};
+    // A unit is free when it is free at every one of the site's tokens.
+    auto taken_at = [&](const std::vector<std::set<int>>& t, int u) {
+      for (const auto& p : ps) {
+        if (t[layer * tokens + token_of(p)].count(u)) return true;
+      }
+      return false;
+    };
     std::vector<int> free, fallback;
     for (int u = 0; u < width; ++u) {
-      if (taken[layer].count(u)) continue;
+      if (taken_at(taken, u)) continue;
       fallback.push_back(u);
-      if (!taken_real[layer].count(u)) free.push_back(u);
+      if (!taken_at(taken_real, u)) free.push_back(u);
     }
     std::vector<int>& pool = free.size() >= site.units.size() ? free : fallback;
     rng.Shuffle(pool);
     std::vector<int> units(pool.begin(), pool.begin() + std::min(pool.size(), site.units.size()));
     std::sort(units.begin(), units.end());
-    taken[layer].insert(units.begin(), units.end());
+    for (const auto& p : ps) taken[layer * tokens + token_of(p)].insert(units.begin(), units.end());
+    config::SiteSpec drawn = site;
+    drawn.units = units;
     control[v].layer = layer;
-    control[v].units = units;
+    control[v].units = SiteColumns(job, drawn);
   }
   return control;
 }
 
-ReportJson FinalControls(const config::ResolvedJob& job, net::MlpImpl& net, const LabelTables& labels,
+ReportJson FinalControls(const config::ResolvedJob& job, net::SiteNetworkImpl& net, const LabelTables& labels,
                          const EvalInputs& inputs, std::vector<std::string>* failures) {
   c10::InferenceMode guard;
   ReportJson out;
-  const UnitMasks real(job.sets, AlignmentSites(job), job.spec.network.hidden);
+  const UnitMasks real(job.sets, AlignmentSites(job), LayerColumns(job));
   TripleDetail detail;
   detail.confusion = true;
   detail.max_failures = 200;
@@ -275,7 +329,7 @@ ReportJson FinalControls(const config::ResolvedJob& job, net::MlpImpl& net, cons
       failures);
   out["confusion"] = r["confusion"];
   const std::vector<UnitSite> random_sites = RandomUnitSites(job);
-  const UnitMasks random(job.sets, random_sites, job.spec.network.hidden);
+  const UnitMasks random(job.sets, random_sites, LayerColumns(job));
   ReportJson c = EvaluateTriples(
       *job.model, job.sets, labels, inputs.base, inputs.source, inputs.set,
       [&](const Tensor& b, const Tensor& s, const Tensor& z) { return random.Logits(net, b, s, z, nullptr); },
@@ -283,7 +337,18 @@ ReportJson FinalControls(const config::ResolvedJob& job, net::MlpImpl& net, cons
   ReportJson sites = ReportJson::object();
   for (const auto& site : job.spec.alignment) {
     const UnitSite& u = random_sites[job.model->Find(site.variable)];
-    sites[site.variable] = ReportJson{{"layer", u.layer}, {"units", u.units}};
+    if (job.spec.network.is_transformer()) {
+      // The drawn units at each of the site's positions (the same units at every one).
+      std::vector<int> units;
+      for (int c : u.units) {
+        if (c / job.spec.network.width == config::TokenOf(*job.model, site.positions.front())) {
+          units.push_back(c % job.spec.network.width);
+        }
+      }
+      sites[site.variable] = ReportJson{{"layer", u.layer}, {"position", site.positions}, {"units", units}};
+    } else {
+      sites[site.variable] = ReportJson{{"layer", u.layer}, {"units", u.units}};
+    }
   }
   ReportJson control;
   control["sites"] = sites;

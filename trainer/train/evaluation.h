@@ -17,6 +17,7 @@
 #include "trainer/causal/model.h"
 #include "trainer/eval/wilson.h"
 #include "trainer/net/mlp.h"
+#include "trainer/net/network.h"
 #include "configs/reader/spec.h"
 
 namespace graft::train {
@@ -150,7 +151,8 @@ class LabelTables {
   torch::Tensor all_counterfactuals_;  // [sets * N * N], or undefined when too large
 };
 
-// Where one variable's units are: a layer and unit indices (layer -1: not aligned).
+// Where one variable's units are: a layer and columns of its activation (layer -1: not
+// aligned). A transformer's column of (token t, unit u) is t * width + u.
 struct UnitSite {
   int layer = -1;
   std::vector<int> units;
@@ -158,6 +160,10 @@ struct UnitSite {
 
 // The config's alignment, indexed by model variable.
 std::vector<UnitSite> AlignmentSites(const config::ResolvedJob& job);
+// The columns of `site`'s units at its positions (an MLP's units as they are), ascending.
+std::vector<int> SiteColumns(const config::ResolvedJob& job, const config::SiteSpec& site);
+// Columns of each layer's activation (net::SiteNetworkImpl::layer_units of the job's network).
+std::vector<int> LayerColumns(const config::ResolvedJob& job);
 
 // Per-layer unit masks of a list of intervention sets over given sites.
 class UnitMasks {
@@ -170,7 +176,7 @@ class UnitMasks {
   net::InterventionMasks ForSets(const torch::Tensor& set_index) const;
   // Intervened logits for base and source inputs [B, I] (value indices); `base_logits` (may be
   // null) receives the base run's logits.
-  torch::Tensor Logits(net::MlpImpl& net, const torch::Tensor& base_in, const torch::Tensor& source_in,
+  torch::Tensor Logits(net::SiteNetworkImpl& net, const torch::Tensor& base_in, const torch::Tensor& source_in,
                        const torch::Tensor& set_index, torch::Tensor* base_logits) const;
 
  private:
@@ -178,8 +184,10 @@ class UnitMasks {
   int lowest_ = -1, highest_ = -1;
 };
 
-// The job's network before training: torch::manual_seed(spec.seed), then the MLP, exactly as the
-// trainer builds it, so its IIA is the run's step-0 IIA.
+// The job's network before training: torch::manual_seed(spec.seed), then the network of
+// network.type, exactly as the trainer builds it, so its IIA is the run's step-0 IIA.
+net::SiteNetwork CreateNetwork(const config::ResolvedJob& job);
+// The same for an MLP job (REQUIRES: network.type mlp).
 net::Mlp CreateMlp(const config::ResolvedJob& job);
 
 // The fixed evaluation data of a job: input numbers for task accuracy on training and held-out
@@ -210,18 +218,19 @@ ReportJson EvaluateTriples(const causal::CausalModel& model, const std::vector<c
 
 // Everything an evaluation line reports about the network: "acc_train", "acc_held_out", then the
 // keys of EvaluateTriples over the job's held-out triples and sets.
-ReportJson EvaluateNetwork(const config::ResolvedJob& job, net::MlpImpl& net, const LabelTables& labels,
+ReportJson EvaluateNetwork(const config::ResolvedJob& job, net::SiteNetworkImpl& net, const LabelTables& labels,
                            const EvalInputs& inputs, const IntervenedLogitsFn& logits);
 
-// The random-units control: per aligned variable the same number of units in the same layer,
-// drawn (seeded by spec.seed) from the layer's units outside the real alignment when enough are
-// free, else from units no other control variable took. Indexed by model variable.
+// The random-units control: per aligned variable the same number of units in the same layer
+// (a transformer's: at the same positions, the same drawn units at each), drawn (seeded by
+// spec.seed) from the layer's units outside the real alignment when enough are free, else from
+// units no other control variable took. Indexed by model variable; units are columns.
 std::vector<UnitSite> RandomUnitSites(const config::ResolvedJob& job);
 
 // The controls of a final report for the network as it is now: "confusion" (real alignment),
 // "control_random_units" ({"sites", "iia_held_out", "iia_changed_held_out", "iia_by_set"}), and up to 200
 // failing triples of the real alignment appended to `failures` as JSON lines.
-ReportJson FinalControls(const config::ResolvedJob& job, net::MlpImpl& net, const LabelTables& labels,
+ReportJson FinalControls(const config::ResolvedJob& job, net::SiteNetworkImpl& net, const LabelTables& labels,
                          const EvalInputs& inputs, std::vector<std::string>* failures);
 
 // Writes `text` to `path` through a temporary file and a rename. Errors name the file.

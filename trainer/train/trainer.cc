@@ -188,7 +188,7 @@ class Run {
         labels_(*job.model, job.sets),
         stream_(job.split.train, job.spec.seed),
         rng_(job.spec.seed, 0x1117),
-        masks_(job.sets, AlignmentSites(job), job.spec.network.hidden),
+        masks_(job.sets, AlignmentSites(job), LayerColumns(job)),
         eval_(CreateEvalInputs(job)) {}
 
   absl::StatusOr<RunOutcome> Execute();
@@ -212,7 +212,7 @@ class Run {
   BatchStream stream_;
   causal::Rng rng_;  // sets, sources
 
-  net::Mlp net_{nullptr};
+  net::SiteNetwork net_;  // the network of network.type
   std::unique_ptr<FlatOptimizer> optimizer_;
   // Pre-allocated per-step index tensors (filled in place each step) and, for a small input
   // space, every input's embedding rows [N, num_inputs] (value index + row offset).
@@ -241,7 +241,7 @@ class Run {
 };
 
 void Run::BuildNetwork() {
-  net_ = CreateMlp(job_);
+  net_ = CreateNetwork(job_);
   std::vector<Tensor> params;
   for (auto& p : net_->parameters()) {
     if (p.requires_grad()) params.push_back(p);
@@ -308,7 +308,7 @@ std::pair<double, double> Run::Step() {
     loss_task = torch::nn::functional::cross_entropy(logits.narrow(0, 0, B), labels);
     loss_iit = torch::nn::functional::cross_entropy(logits.narrow(0, B, B), cf);
   } else {
-    Tensor logits = net_->Head(net_->Hidden(embedded, net_->num_layers() - 1).back());
+    Tensor logits = net_->Logits(embedded);
     loss_task = torch::nn::functional::cross_entropy(logits, labels);
   }
   Tensor loss = t.task_weight == 1.0 ? loss_task : loss_task * t.task_weight;
