@@ -22,7 +22,6 @@
 #include <set>
 #include <sstream>
 #include <string>
-#include <thread>
 #include <vector>
 
 #include <grpcpp/grpcpp.h>
@@ -207,30 +206,28 @@ TEST(Chaos, DrillLosesNoPointAndMatchesTheFaultFreeRuns) {
   std::vector<Kill> kills;
   std::map<std::string, int64_t> first_seen;  // "worker job" -> the job's step when first seen there
   int64_t wanted_evaluations = draw(2, 4);
-  while (SecondsSince(drill_start) < fault_seconds && !all_final()) {
-    if (coordinator_kills < 2 && succeeded() >= coordinator_kill_at[coordinator_kills]) {
-      bool training = false;
-      const v1::ListWorkersResponse fleet = list_workers();
-      for (const auto& w : fleet.workers()) training |= w.state() == v1::WORKER_STATE_TRAINING;
-      if (training) {
-        c.KillCoordinator();
-        c.StartCoordinator();
-        ++coordinator_kills;
-        std::cout << "chaos: graftd killed and restarted (" << coordinator_kills << " of 2) at "
-                  << SecondsSince(drill_start) << " s\n";
-        continue;
-      }
+  // The next fault the drill's state makes due: graftd's kill once enough jobs succeeded while a
+  // worker trains, or a worker whose lease has moved on by the drawn number of evaluations.
+  struct Due {
+    bool coordinator = false;
+    bool worker = false;
+    size_t victim = 0;
+    Kill kill;
+  };
+  auto next_due = [&]() {
+    Due due;
+    const bool coordinator_due = coordinator_kills < 2 && succeeded() >= coordinator_kill_at[coordinator_kills];
+    const bool workers_left = static_cast<int64_t>(kills.size()) < max_kills;
+    if (!coordinator_due && !workers_left) return due;
+    const v1::ListWorkersResponse fleet = list_workers();
+    if (coordinator_due) {
+      for (const auto& w : fleet.workers()) due.coordinator |= w.state() == v1::WORKER_STATE_TRAINING;
+      if (due.coordinator) return due;
     }
-    if (static_cast<int64_t>(kills.size()) >= max_kills) {
-      if (coordinator_kills == 2) break;
-      std::this_thread::sleep_for(std::chrono::milliseconds(50));  // a poll interval: waiting for successes
-      continue;
-    }
-    for (auto& s : slots) {
-      if (s.id.empty()) s.id = RegisteredId(s.process->log_path());
+    for (auto& slot : slots) {
+      if (slot.id.empty()) slot.id = RegisteredId(slot.process->log_path());
     }
     std::vector<std::pair<size_t, Kill>> eligible;
-    const v1::ListWorkersResponse fleet = list_workers();
     for (const auto& w : fleet.workers()) {
       if (w.state() != v1::WORKER_STATE_TRAINING) continue;
       for (size_t i = 0; i < slots.size(); ++i) {
@@ -240,16 +237,33 @@ TEST(Chaos, DrillLosesNoPointAndMatchesTheFaultFreeRuns) {
         if (w.step() >= it->second + wanted_evaluations * every) eligible.push_back({i, {w.id(), w.job_id(), w.step()}});
       }
     }
-    if (eligible.empty()) {
-      std::this_thread::sleep_for(std::chrono::milliseconds(50));  // a poll interval, not a wait for time
-      continue;
-    }
+    if (!workers_left || eligible.empty()) return due;
     const auto& [victim, kill] = eligible[static_cast<size_t>(draw(0, static_cast<int64_t>(eligible.size()) - 1))];
-    slots[victim].process->Signal(SIGKILL);
-    ASSERT_NE(slots[victim].process->Wait(30000), -1) << "a killed worker did not exit";
-    kills.push_back(kill);
-    start_slot(victim);
-    wanted_evaluations = draw(2, 4);
+    due.worker = true;
+    due.victim = victim;
+    due.kill = kill;
+    return due;
+  };
+  while (!all_final() && (coordinator_kills < 2 || static_cast<int64_t>(kills.size()) < max_kills)) {
+    const int left_ms = static_cast<int>(1000 * (fault_seconds - SecondsSince(drill_start)));
+    Due due;
+    // Waits for an event (a fault falling due, or every job ending), at most until the budget ends.
+    if (left_ms <= 0 || !WaitFor([&] { return (due = next_due()).coordinator || due.worker || all_final(); }, left_ms)) {
+      break;
+    }
+    if (due.coordinator) {
+      c.KillCoordinator();
+      c.StartCoordinator();
+      ++coordinator_kills;
+      std::cout << "chaos: graftd killed and restarted (" << coordinator_kills << " of 2) at "
+                << SecondsSince(drill_start) << " s\n";
+    } else if (due.worker) {
+      slots[due.victim].process->Signal(SIGKILL);
+      ASSERT_NE(slots[due.victim].process->Wait(30000), -1) << "a killed worker did not exit";
+      kills.push_back(due.kill);
+      start_slot(due.victim);
+      wanted_evaluations = draw(2, 4);
+    }
   }
   const double fault_phase_s = SecondsSince(drill_start);
   // Both coordinator kills happen before the faults end unless the time budget ran out first.
