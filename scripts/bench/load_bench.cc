@@ -22,6 +22,7 @@
 #include <cstring>
 #include <filesystem>
 #include <fstream>
+#include <future>
 #include <iostream>
 #include <mutex>
 #include <random>
@@ -100,8 +101,14 @@ long StatusKb(int pid, const char* key) {
 int main(int argc, char** argv) {
   int seconds = 60, workers = 64, watchers = 8, pollers = 4;
   std::string graftd = "build/bin/graftd";
-  for (int i = 1; i + 1 < argc; i += 2) {
-    const std::string flag = argv[i], value = argv[i + 1];
+  for (int i = 1; i < argc; i += 2) {
+    const std::string flag = argv[i];
+    if (flag == "--help" || i + 1 == argc) {
+      std::cerr << "usage: graft-load-bench [--seconds 60] [--workers 64] [--watchers 8] [--pollers 4] "
+                   "[--graftd build/bin/graftd]\n";
+      return flag == "--help" ? 0 : 3;
+    }
+    const std::string value = argv[i + 1];
     if (flag == "--seconds") seconds = std::atoi(value.c_str());
     else if (flag == "--workers") workers = std::atoi(value.c_str());
     else if (flag == "--watchers") watchers = std::atoi(value.c_str());
@@ -162,7 +169,9 @@ int main(int argc, char** argv) {
     if (first_error.empty()) first_error = what + ": " + std::to_string(s.error_code()) + " " + s.error_message();
   };
 
-  // The submitter keeps at least 200 jobs queued.
+  // The submitter keeps at least 200 jobs queued, and says when the queue first holds them.
+  std::promise<void> first_batch;
+  bool first_batch_told = false;  // the submitter's own
   std::thread submitter([&] {
     auto jobs = graft::v1::Jobs::NewStub(channel(0));
     int seed = 1;
@@ -175,6 +184,10 @@ int main(int argc, char** argv) {
         continue;
       }
       if (info.queued_jobs() >= 200) {
+        if (!first_batch_told) {
+          first_batch_told = true;
+          first_batch.set_value();
+        }
         std::this_thread::sleep_for(std::chrono::milliseconds(20));
         continue;
       }
@@ -186,8 +199,14 @@ int main(int argc, char** argv) {
       if (!s.ok()) error("SubmitJob", s);
     }
   });
-  // Wait for a first batch, so the workers start against a queue.
-  std::this_thread::sleep_for(std::chrono::milliseconds(500));
+  // The workers start against a queue: wait for the first batch (at most a minute).
+  if (first_batch.get_future().wait_for(std::chrono::seconds(60)) != std::future_status::ready) {
+    std::cerr << "graft-load-bench: the queue did not reach 200 jobs within 60 s; see " << dir << "/graftd.log\n";
+    stop = true;
+    submitter.join();
+    kill(pid, SIGKILL);
+    return 1;
+  }
   const auto start = Clock::now();
   const auto end = start + std::chrono::seconds(seconds);
 
