@@ -197,15 +197,9 @@ TEST(Tokens, DataDirAndDatabaseArePrivate) {
 TEST(Artifacts, NamesWithPathsAreRefused) {
   Cluster c;
   const std::string id = c.Submit(kAlice, "parcel-routing", kSmall);
-  v1::RegisterWorkerRequest reg;
-  reg.set_host("fake");
-  v1::RegisterWorkerResponse me;
-  ASSERT_TRUE(c.workers().RegisterWorker(c.Ctx(kWorker).get(), reg, &me).ok());
-  v1::LeaseJobRequest lreq;
-  lreq.set_worker_id(me.worker_id());
-  lreq.set_wait_ms(10000);
-  v1::LeaseJobResponse lease;
-  ASSERT_TRUE(c.workers().LeaseJob(c.Ctx(kWorker).get(), lreq, &lease).ok());
+  const std::string worker_id = c.RegisterFakeWorker("fake");
+  ASSERT_FALSE(worker_id.empty());
+  const v1::LeaseJobResponse lease = c.LeaseFor(worker_id, 10000);
   ASSERT_EQ(lease.job_id(), id);
   const std::string bytes = "not for you";
   for (const std::string name : {"../x", "/etc/passwd", "a/b", "../../graft.db", "", "weights.pt/", "."}) {
@@ -214,7 +208,7 @@ TEST(Artifacts, NamesWithPathsAreRefused) {
     auto wr = c.workers().UploadArtifact(ctx.get(), &o);
     v1::UploadArtifactRequest r;
     auto* h = r.mutable_header();
-    h->set_worker_id(me.worker_id());
+    h->set_worker_id(worker_id);
     h->set_job_id(id);
     h->set_attempt(lease.attempt());
     h->set_name(name);
@@ -334,13 +328,11 @@ TEST(Limits, EachSettingIsRefusedWithItsNameAndValue) {
     EXPECT_REFUSED(c.workers().RegisterWorker(c.Ctx(kWorker).get(), r, &o), INVALID_ARGUMENT,
                    "host is 17 bytes; this coordinator accepts at most max_name_bytes = 16");
   }
-  v1::RegisterWorkerRequest reg;
-  reg.set_host("w");
-  v1::RegisterWorkerResponse me;
-  ASSERT_TRUE(c.workers().RegisterWorker(c.Ctx(kWorker).get(), reg, &me).ok());
+  const std::string worker_id = c.RegisterFakeWorker("w");
+  ASSERT_FALSE(worker_id.empty());
   {
     v1::ReportRequest r;
-    r.set_worker_id(me.worker_id());
+    r.set_worker_id(worker_id);
     r.set_job_id("j-1");
     for (int i = 0; i < 3; ++i) r.add_points()->set_step(i);
     v1::ReportResponse o;
@@ -353,7 +345,7 @@ TEST(Limits, EachSettingIsRefusedWithItsNameAndValue) {
     auto wr = c.workers().UploadArtifact(ctx.get(), &o);
     v1::UploadArtifactRequest r;
     auto* h = r.mutable_header();
-    h->set_worker_id(me.worker_id());
+    h->set_worker_id(worker_id);
     h->set_job_id("j-1");
     h->set_name("weights.pt");
     h->set_total_bytes(1025);
@@ -365,7 +357,7 @@ TEST(Limits, EachSettingIsRefusedWithItsNameAndValue) {
   }
   {
     v1::FinishJobRequest r;
-    r.set_worker_id(me.worker_id());
+    r.set_worker_id(worker_id);
     r.set_job_id("j-1");
     r.set_failed_reason(std::string(100, 'f'));
     v1::FinishJobResponse o;
@@ -374,7 +366,7 @@ TEST(Limits, EachSettingIsRefusedWithItsNameAndValue) {
   }
   {
     v1::DeregisterWorkerRequest r;
-    r.set_worker_id(me.worker_id());
+    r.set_worker_id(worker_id);
     r.set_reason(std::string(65, 'd'));
     v1::DeregisterWorkerResponse o;
     EXPECT_REFUSED(c.workers().DeregisterWorker(c.Ctx(kWorker).get(), r, &o), INVALID_ARGUMENT,
@@ -437,6 +429,7 @@ TEST(Limits, WatchesPerUserAndCallsInFlightPerToken) {
   reg.set_host("w");
   v1::RegisterWorkerResponse me;
   ASSERT_TRUE(c.workers().RegisterWorker(c.Ctx(kWorker).get(), reg, &me).ok());
+  const std::string worker_id = me.worker_id();
   struct Poll {
     grpc::ClientContext ctx;
     v1::LeaseJobResponse resp;
@@ -444,7 +437,7 @@ TEST(Limits, WatchesPerUserAndCallsInFlightPerToken) {
   };
   std::vector<std::unique_ptr<Poll>> polls;
   v1::LeaseJobRequest lr;
-  lr.set_worker_id(me.worker_id());
+  lr.set_worker_id(worker_id);
   lr.set_wait_ms(4000);
   for (int i = 0; i < 3; ++i) {
     polls.push_back(std::make_unique<Poll>());
@@ -563,15 +556,9 @@ TEST(Limits, ShippedSettingsFileShowsTheDefaults) {
 TEST(Watch, AWatcherThatStopsReadingIsEndedAndHoldsUpNoOne) {
   Cluster c;
   const std::string id = c.Submit(kAlice, "parcel-routing", kSmall);
-  v1::RegisterWorkerRequest reg;
-  reg.set_host("fake");
-  v1::RegisterWorkerResponse me;
-  ASSERT_TRUE(c.workers().RegisterWorker(c.Ctx(kWorker).get(), reg, &me).ok());
-  v1::LeaseJobRequest lreq;
-  lreq.set_worker_id(me.worker_id());
-  lreq.set_wait_ms(10000);
-  v1::LeaseJobResponse lease;
-  ASSERT_TRUE(c.workers().LeaseJob(c.Ctx(kWorker).get(), lreq, &lease).ok());
+  const std::string worker_id = c.RegisterFakeWorker("fake");
+  ASSERT_FALSE(worker_id.empty());
+  const v1::LeaseJobResponse lease = c.LeaseFor(worker_id, 10000);
   ASSERT_EQ(lease.job_id(), id);
 
   // The slow watcher has a connection of its own (a distinct channel argument), reads the first
@@ -608,7 +595,7 @@ TEST(Watch, AWatcherThatStopsReadingIsEndedAndHoldsUpNoOne) {
   const std::string metrics = "{\"pad\": \"" + std::string(2000, 'p') + "\"}";
   for (int batch = 0; batch < 15; ++batch) {
     v1::ReportRequest r;
-    r.set_worker_id(me.worker_id());
+    r.set_worker_id(worker_id);
     r.set_job_id(id);
     r.set_attempt(lease.attempt());
     for (int k = 1; k <= 1000; ++k) {

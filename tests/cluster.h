@@ -160,6 +160,27 @@ class Cluster {
     EXPECT_TRUE(s.ok()) << s.error_message();
     return {resp.points().begin(), resp.points().end()};
   }
+  // A worker of the test's own, with no process behind it: registers it with `token` and returns
+  // its id ("" after failing the current test).
+  std::string RegisterFakeWorker(const std::string& host, const std::string& token = kWorker) {
+    v1::RegisterWorkerRequest req;
+    req.set_host(host);
+    v1::RegisterWorkerResponse resp;
+    grpc::Status s = workers_->RegisterWorker(Ctx(token).get(), req, &resp);
+    EXPECT_TRUE(s.ok()) << s.error_message();
+    return resp.worker_id();
+  }
+  // Long-polls a lease for that worker for at most `wait_ms`; the reply (has_job false when
+  // nothing came, after failing the current test if the call itself failed).
+  v1::LeaseJobResponse LeaseFor(const std::string& worker_id, int wait_ms, const std::string& token = kWorker) {
+    v1::LeaseJobRequest req;
+    req.set_worker_id(worker_id);
+    req.set_wait_ms(wait_ms);
+    v1::LeaseJobResponse lease;
+    grpc::Status s = workers_->LeaseJob(Ctx(token, wait_ms + 20000).get(), req, &lease);
+    EXPECT_TRUE(s.ok()) << s.error_message();
+    return lease;
+  }
   bool WaitState(const std::string& id, v1::JobState state, int timeout_ms) {
     return WaitFor([&] { return Get(id).state() == state; }, timeout_ms);
   }

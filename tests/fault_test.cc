@@ -28,6 +28,7 @@
 #include "spdlog/sinks/ringbuffer_sink.h"
 #include "spdlog/spdlog.h"
 #include "tests/cluster.h"
+#include "tests/fake_clock.h"
 #include "tests/test_util.h"
 
 namespace graft {
@@ -36,6 +37,7 @@ namespace {
 using json = nlohmann::json;
 using ::graft::testing::BinaryDir;
 using ::graft::testing::Cluster;
+using ::graft::testing::FakeClock;
 using ::graft::testing::kAlice;
 using ::graft::testing::ReadFile;
 using ::graft::testing::RunCommand;
@@ -47,12 +49,6 @@ using ::graft::testing::WriteFile;
 
 // ---------------------------------------------------------------------------------------------
 // The coordinator in-process, with a fake clock.
-
-class FakeClock : public server::Clock {
- public:
-  int64_t NowMs() override { return now_ms.load(); }
-  std::atomic<int64_t> now_ms{5'000'000};
-};
 
 class RecoveryTest : public ::testing::Test {
  protected:
@@ -146,7 +142,7 @@ class RecoveryTest : public ::testing::Test {
   }
 
   ScopedTempDir dir_;
-  FakeClock clock_;
+  FakeClock clock_{5'000'000};
   std::shared_ptr<spdlog::sinks::ringbuffer_sink_mt> sink_ = std::make_shared<spdlog::sinks::ringbuffer_sink_mt>(256);
   std::shared_ptr<spdlog::logger> log_ = std::make_shared<spdlog::logger>("recovery", sink_);
   const server::Principal alice_{"alice", server::Role::kUser};

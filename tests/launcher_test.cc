@@ -11,20 +11,16 @@
 #include "server/launcher.h"
 #include "spdlog/sinks/null_sink.h"
 #include "spdlog/spdlog.h"
+#include "tests/fake_clock.h"
 #include "tests/test_util.h"
 
 namespace graft::server {
 namespace {
 
+using ::graft::testing::FakeClock;
 using ::graft::testing::ReadFile;
 using ::graft::testing::ScopedTempDir;
 using ::graft::testing::SourceDir;
-
-class FakeClock : public Clock {
- public:
-  int64_t NowMs() override { return now_ms; }
-  int64_t now_ms = 1'000'000;
-};
 
 // Answers sbatch with a fixed array job id (or a failure) and squeue with a given task list.
 class FakeRunner : public CommandRunner {
@@ -110,7 +106,7 @@ class LauncherTest : public ::testing::Test {
   }
 
   ScopedTempDir dir_;
-  FakeClock clock_;
+  FakeClock clock_{1'000'000};
   std::shared_ptr<spdlog::logger> log_;
   std::unique_ptr<Coordinator> coordinator_;
   LauncherOptions options_;

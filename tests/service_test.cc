@@ -500,15 +500,9 @@ TEST(Service, CoordinatorKilledLosesNoAcknowledgedPoint) {
   }
   const std::string running = c.Submit(kAlice, "parcel-routing", kSmall);
   const std::string queued = c.Submit(kAlice, "parcel-routing", kSmall);
-  v1::RegisterWorkerRequest reg;
-  reg.set_host("fake");
-  v1::RegisterWorkerResponse me;
-  ASSERT_TRUE(c.workers().RegisterWorker(c.Ctx(kWorker).get(), reg, &me).ok());
-  v1::LeaseJobRequest lreq;
-  lreq.set_worker_id(me.worker_id());
-  lreq.set_wait_ms(1000);
-  v1::LeaseJobResponse lease;
-  ASSERT_TRUE(c.workers().LeaseJob(c.Ctx(kWorker).get(), lreq, &lease).ok());
+  const std::string worker_id = c.RegisterFakeWorker("fake");
+  ASSERT_FALSE(worker_id.empty());
+  const v1::LeaseJobResponse lease = c.LeaseFor(worker_id, 1000);
   ASSERT_EQ(lease.job_id(), running);
   std::vector<int64_t> acknowledged;  // written by the reporter thread; read after it is joined
   std::atomic<size_t> acknowledged_count{0};
@@ -516,7 +510,7 @@ TEST(Service, CoordinatorKilledLosesNoAcknowledgedPoint) {
   std::thread reporter([&] {
     for (int64_t step = 1; step <= 100000 && !failed; ++step) {
       v1::ReportRequest r;
-      r.set_worker_id(me.worker_id());
+      r.set_worker_id(worker_id);
       r.set_job_id(running);
       r.set_attempt(lease.attempt());
       r.set_step(step);
@@ -548,11 +542,11 @@ TEST(Service, CoordinatorKilledLosesNoAcknowledgedPoint) {
   EXPECT_EQ(c.Get(queued).state(), v1::JOB_STATE_QUEUED);
   v1::Job held = c.Get(running);
   EXPECT_EQ(held.state(), v1::JOB_STATE_RUNNING);
-  EXPECT_EQ(held.worker_id(), me.worker_id());
+  EXPECT_EQ(held.worker_id(), worker_id);
   // The fake worker hands the job back (its lease is still current), and a real worker finishes
   // everything.
   v1::FinishJobRequest back;
-  back.set_worker_id(me.worker_id());
+  back.set_worker_id(worker_id);
   back.set_job_id(running);
   back.set_attempt(lease.attempt());
   back.set_handed_back_reason("the fake worker leaves");
