@@ -196,6 +196,39 @@ CertificateFacts FactsOf(X509* x) {
   return f;
 }
 
+// Reads a PEM file of CA certificates, checked; its text.
+absl::StatusOr<std::string> ReadCaFile(const std::string& path, const std::string& role) {
+  auto ca = ReadWhole(path, role);
+  if (!ca.ok()) return ca.status();
+  std::vector<UniqueX509> cas;
+  if (absl::Status s = CheckCertificates(*ca, role, &cas); !s.ok()) return s;
+  return *ca;
+}
+
+// A certificate (chain) and its key, read, checked and matched. `what` names the certificate in
+// the mismatch message ("the certificate", "the client certificate").
+struct CertAndKey {
+  std::string cert_pem, key_pem;
+  CertificateFacts leaf;  // of the first certificate
+};
+absl::StatusOr<CertAndKey> ReadCertAndKey(const std::string& cert_file, const std::string& cert_role,
+                                          const std::string& key_file, const std::string& key_role,
+                                          const std::string& what) {
+  auto cert = ReadWhole(cert_file, cert_role);
+  if (!cert.ok()) return cert.status();
+  std::vector<UniqueX509> chain;
+  if (absl::Status s = CheckCertificates(*cert, cert_role, &chain); !s.ok()) return s;
+  auto key_text = ReadWhole(key_file, key_role);
+  if (!key_text.ok()) return key_text.status();
+  auto key = CheckKey(*key_text, key_role);
+  if (!key.ok()) return key.status();
+  if (X509_check_private_key(chain[0].get(), key->get()) != 1) {
+    ERR_clear_error();
+    return absl::InvalidArgumentError(absl::StrCat(key_role, ": does not belong to ", what, " ", cert_file));
+  }
+  return CertAndKey{*cert, *key_text, FactsOf(chain[0].get())};
+}
+
 bool IsIpLiteral(const std::string& name) {
   unsigned char buf[16];
   return inet_pton(AF_INET, name.c_str(), buf) == 1 || inet_pton(AF_INET6, name.c_str(), buf) == 1;
@@ -441,30 +474,16 @@ absl::StatusOr<ClientCredentials> LoadClientCredentials(const ClientFiles& files
                                           ? "--key needs --cert: a client certificate comes with its key"
                                           : "--cert needs --key: a client certificate comes with its key");
   }
-  const std::string ca_role = absl::StrCat("the CA file ", files.ca_file, " (--ca-file)");
-  auto ca = ReadWhole(files.ca_file, ca_role);
+  auto ca = ReadCaFile(files.ca_file, absl::StrCat("the CA file ", files.ca_file, " (--ca-file)"));
   if (!ca.ok()) return ca.status();
-  std::vector<UniqueX509> cas;
-  if (absl::Status s = CheckCertificates(*ca, ca_role, &cas); !s.ok()) return s;
   c.ca_pem = *ca;
   if (!files.cert_file.empty()) {
-    const std::string cert_role = absl::StrCat("the client certificate ", files.cert_file, " (--cert)");
-    const std::string key_role = absl::StrCat("the client key ", files.key_file, " (--key)");
-    auto cert = ReadWhole(files.cert_file, cert_role);
-    if (!cert.ok()) return cert.status();
-    std::vector<UniqueX509> chain;
-    if (absl::Status s = CheckCertificates(*cert, cert_role, &chain); !s.ok()) return s;
-    auto key_text = ReadWhole(files.key_file, key_role);
-    if (!key_text.ok()) return key_text.status();
-    auto key = CheckKey(*key_text, key_role);
-    if (!key.ok()) return key.status();
-    if (X509_check_private_key(chain[0].get(), key->get()) != 1) {
-      ERR_clear_error();
-      return absl::InvalidArgumentError(
-          absl::StrCat(key_role, ": does not belong to the client certificate ", files.cert_file));
-    }
-    c.cert_pem = *cert;
-    c.key_pem = *key_text;
+    auto pair = ReadCertAndKey(files.cert_file, absl::StrCat("the client certificate ", files.cert_file, " (--cert)"),
+                               files.key_file, absl::StrCat("the client key ", files.key_file, " (--key)"),
+                               "the client certificate");
+    if (!pair.ok()) return pair.status();
+    c.cert_pem = pair->cert_pem;
+    c.key_pem = pair->key_pem;
   }
   return c;
 }
@@ -563,29 +582,17 @@ Diagnosis Diagnose(const std::string& address, const ClientCredentials& c, int t
 absl::StatusOr<ServerCredentialsPem> LoadServerCredentials(const ServerFiles& files) {
   ServerCredentialsPem pem;
   pem.files = files;
-  const std::string cert_role = absl::StrCat("graftd's certificate ", files.cert_file, " (--tls-cert, tls_cert)");
-  const std::string key_role = absl::StrCat("graftd's key ", files.key_file, " (--tls-key, tls_key)");
-  auto cert = ReadWhole(files.cert_file, cert_role);
-  if (!cert.ok()) return cert.status();
-  std::vector<UniqueX509> chain;
-  if (absl::Status s = CheckCertificates(*cert, cert_role, &chain); !s.ok()) return s;
-  auto key_text = ReadWhole(files.key_file, key_role);
-  if (!key_text.ok()) return key_text.status();
-  auto key = CheckKey(*key_text, key_role);
-  if (!key.ok()) return key.status();
-  if (X509_check_private_key(chain[0].get(), key->get()) != 1) {
-    ERR_clear_error();
-    return absl::InvalidArgumentError(absl::StrCat(key_role, ": does not belong to the certificate ", files.cert_file));
-  }
-  pem.cert_pem = *cert;
-  pem.key_pem = *key_text;
-  pem.certificate = FactsOf(chain[0].get());
+  auto pair = ReadCertAndKey(files.cert_file, absl::StrCat("graftd's certificate ", files.cert_file, " (--tls-cert, tls_cert)"),
+                             files.key_file, absl::StrCat("graftd's key ", files.key_file, " (--tls-key, tls_key)"),
+                             "the certificate");
+  if (!pair.ok()) return pair.status();
+  pem.cert_pem = pair->cert_pem;
+  pem.key_pem = pair->key_pem;
+  pem.certificate = pair->leaf;
   if (!files.client_ca_file.empty()) {
-    const std::string ca_role = absl::StrCat("the client CA file ", files.client_ca_file, " (--client-ca, client_ca)");
-    auto ca = ReadWhole(files.client_ca_file, ca_role);
+    auto ca = ReadCaFile(files.client_ca_file,
+                         absl::StrCat("the client CA file ", files.client_ca_file, " (--client-ca, client_ca)"));
     if (!ca.ok()) return ca.status();
-    std::vector<UniqueX509> cas;
-    if (absl::Status s = CheckCertificates(*ca, ca_role, &cas); !s.ok()) return s;
     pem.client_ca_pem = *ca;
   }
   return pem;
