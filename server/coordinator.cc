@@ -155,23 +155,34 @@ absl::StatusOr<JobRecord> Coordinator::LoadVisible(const Principal& who, const s
   return job;
 }
 
-absl::Status Coordinator::CheckWorker(const Principal& who, const std::string& worker_id) {
-  auto w = store_->GetWorker(worker_id);
-  if (!w.ok()) return w.status();
-  if (!w->has_value()) {
-    return absl::NotFoundError(absl::StrCat("worker '", worker_id, "' is not registered; call RegisterWorker first"));
-  }
-  const std::string& owner = (*w)->token_name;
-  if (owner.empty()) {
+namespace {
+
+absl::Status NotRegistered(const std::string& worker_id) {
+  return absl::NotFoundError(absl::StrCat("worker '", worker_id, "' is not registered; call RegisterWorker first"));
+}
+
+// PermissionDenied unless `w` (the record of `worker_id`) was registered by `who`'s token.
+absl::Status OwnedBy(const Principal& who, const std::string& worker_id, const WorkerRecord& w) {
+  if (w.token_name.empty()) {
     return absl::PermissionDeniedError(absl::StrCat("worker '", worker_id,
                                                     "' was registered by an older graftd that did not record its "
                                                     "token; it must register again"));
   }
-  if (owner != who.name) {
+  if (w.token_name != who.name) {
     return absl::PermissionDeniedError(absl::StrCat("worker '", worker_id, "' belongs to another worker token; '",
                                                     who.name, "' may act only as the workers it registered"));
   }
   return absl::OkStatus();
+}
+
+}  // namespace
+
+absl::StatusOr<WorkerRecord> Coordinator::CheckWorker(const Principal& who, const std::string& worker_id) {
+  auto w = store_->GetWorker(worker_id);
+  if (!w.ok()) return w.status();
+  if (!w->has_value()) return NotRegistered(worker_id);
+  if (absl::Status st = OwnedBy(who, worker_id, **w); !st.ok()) return st;
+  return **w;
 }
 
 absl::Status Coordinator::CheckLength(const std::string& what, const std::string& text, int64_t max,
@@ -652,14 +663,12 @@ void Coordinator::Lease(const Principal& who, const v1::LeaseJobRequest& request
       // Seen: renew the worker's last_seen. A worker that deregistered must register again, and so
       // must one registered before worker ids were bound to tokens (token_name "").
       auto worker = store_->GetWorker(request.worker_id());
-      absl::Status refused;
-      if (!worker.ok()) {
-        refused = worker.status();
-      } else if (worker->has_value() && !(*worker)->token_name.empty() && (*worker)->token_name != who.name) {
-        refused = CheckWorker(who, request.worker_id());
-      } else if (!worker->has_value() || (*worker)->left_ms != 0 || (*worker)->token_name.empty()) {
-        refused = absl::NotFoundError(
-            absl::StrCat("worker '", request.worker_id(), "' is not registered; call RegisterWorker first"));
+      absl::Status refused = worker.status();
+      if (refused.ok() && worker->has_value() && !(*worker)->token_name.empty()) {
+        refused = OwnedBy(who, request.worker_id(), **worker);
+      }
+      if (refused.ok() && (!worker->has_value() || (*worker)->left_ms != 0 || (*worker)->token_name.empty())) {
+        refused = NotRegistered(request.worker_id());
       }
       if (!refused.ok()) {
         deferred.push_back([done, refused] { done(refused, v1::LeaseJobResponse()); });
@@ -703,7 +712,7 @@ absl::StatusOr<v1::ReportResponse> Coordinator::Report(const Principal& who, con
                                                      options_.max_points_per_report, "; send them in batches"));
     }
     std::lock_guard<std::mutex> lock(mu_);
-    if (absl::Status st = CheckWorker(who, request.worker_id()); !st.ok()) return st;
+    if (auto w = CheckWorker(who, request.worker_id()); !w.ok()) return w.status();
     auto job = LoadLeased(request.job_id(), request.worker_id(), request.attempt(), /*allow_cancelled=*/true);
     if (!job.ok()) return job.status();
     Seen(request.worker_id());
@@ -745,7 +754,7 @@ absl::StatusOr<v1::ReportResponse> Coordinator::Report(const Principal& who, con
 
 absl::StatusOr<ArtifactRecord> Coordinator::CheckpointFor(const Principal& who, const v1::FetchCheckpointRequest& request) {
   std::lock_guard<std::mutex> lock(mu_);
-  if (absl::Status st = CheckWorker(who, request.worker_id()); !st.ok()) return st;
+  if (auto w = CheckWorker(who, request.worker_id()); !w.ok()) return w.status();
   auto job = LoadLeased(request.job_id(), request.worker_id(), request.attempt(), false);
   if (!job.ok()) return job.status();
   auto a = store_->GetArtifact(job->id, "checkpoint.pt");
@@ -769,7 +778,7 @@ absl::StatusOr<std::unique_ptr<Upload>> Coordinator::BeginUpload(const Principal
   }
   if (header.sha256().size() != 64) return absl::InvalidArgumentError("sha256: expected 64 hex digits");
   std::lock_guard<std::mutex> lock(mu_);
-  if (absl::Status st = CheckWorker(who, header.worker_id()); !st.ok()) return st;
+  if (auto w = CheckWorker(who, header.worker_id()); !w.ok()) return w.status();
   auto job = LoadLeased(header.job_id(), header.worker_id(), header.attempt(), false);
   if (!job.ok()) return job.status();
   std::unique_ptr<Upload> up(new Upload());
@@ -834,7 +843,7 @@ absl::Status Coordinator::Finish(const Principal& who, const v1::FinishJobReques
   Deferred deferred;
   {
     std::lock_guard<std::mutex> lock(mu_);
-    if (absl::Status st = CheckWorker(who, request.worker_id()); !st.ok()) return st;
+    if (auto w = CheckWorker(who, request.worker_id()); !w.ok()) return w.status();
     const bool stopped = request.outcome_case() == v1::FinishJobRequest::kStoppedReason;
     auto job = LoadLeased(request.job_id(), request.worker_id(), request.attempt(), /*allow_cancelled=*/true);
     if (!job.ok()) return job.status();
@@ -907,17 +916,15 @@ absl::Status Coordinator::Deregister(const Principal& who, const v1::DeregisterW
     return st;
   }
   std::lock_guard<std::mutex> lock(mu_);
-  if (absl::Status st = CheckWorker(who, request.worker_id()); !st.ok()) return st;
-  auto w = store_->GetWorker(request.worker_id());
+  auto w = CheckWorker(who, request.worker_id());
   if (!w.ok()) return w.status();
-  if (!w->has_value()) return absl::NotFoundError(absl::StrCat("worker '", request.worker_id(), "' is not registered"));
-  if ((*w)->left_ms == 0) {
-    (*w)->left_ms = (*w)->last_seen_ms = clock_->NowMs();
+  if (w->left_ms == 0) {
+    w->left_ms = w->last_seen_ms = clock_->NowMs();
     seen_ms_.erase(request.worker_id());
-    absl::Status st = store_->PutWorker(**w);
+    absl::Status st = store_->PutWorker(*w);
     if (!st.ok()) return st;
     log_->info("worker {} left: {} ({} jobs finished)", request.worker_id(),
-               request.reason().empty() ? "no reason given" : request.reason(), (*w)->jobs_finished);
+               request.reason().empty() ? "no reason given" : request.reason(), w->jobs_finished);
   }
   return absl::OkStatus();
 }

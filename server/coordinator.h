@@ -172,9 +172,10 @@ class Coordinator {
   absl::StatusOr<JobRecord> LoadVisible(const Principal& who, const std::string& job_id);  // REQUIRES: mu_
   // InvalidArgument "WHAT is N bytes; this coordinator accepts at most SETTING = MAX" when `text` is longer.
   absl::Status CheckLength(const std::string& what, const std::string& text, int64_t max, const char* setting) const;
-  // OK when `worker_id` is registered and was registered by a token named who.name: NotFound for
-  // an unknown worker, PermissionDenied for another token's worker. REQUIRES: mu_
-  absl::Status CheckWorker(const Principal& who, const std::string& worker_id);
+  // The worker's record when `worker_id` is registered and was registered by a token named
+  // who.name: NotFound for an unknown worker, PermissionDenied for another token's worker (or one
+  // registered before tokens were recorded). REQUIRES: mu_
+  absl::StatusOr<WorkerRecord> CheckWorker(const Principal& who, const std::string& worker_id);
   absl::StatusOr<JobRecord> LoadLeased(const std::string& job_id, const std::string& worker_id, int32_t attempt,
                                        bool allow_cancelled);  // REQUIRES: mu_
   v1::Job ToProto(const JobRecord& job, bool with_texts);
