@@ -1,8 +1,10 @@
 #include "server/coordinator.h"
 
 #include <algorithm>
+#include <cerrno>
 #include <chrono>
 #include <cstdio>
+#include <cstring>
 #include <filesystem>
 
 #include "absl/status/status.h"
@@ -59,6 +61,22 @@ absl::StatusOr<int64_t> ParseJobId(const std::string& text) {
   return std::stoll(digits);
 }
 
+namespace {
+
+// The status of a failed write to the data dir, from errno: ResourceExhausted when the disk is
+// full (or over quota), Unavailable otherwise; both name the file and say it is the disk.
+absl::Status DiskWriteError(const std::string& path, const std::string& what) {
+  const int err = errno;
+  if (err == ENOSPC || err == EDQUOT) {
+    return absl::ResourceExhaustedError(
+        absl::StrCat("the data dir's disk is full: ", path, ": ", what, ": ", std::strerror(err)));
+  }
+  return absl::UnavailableError(absl::StrCat("the data dir's disk cannot be written: ", path, ": ", what, ": ",
+                                             err != 0 ? std::strerror(err) : "unknown error"));
+}
+
+}  // namespace
+
 Upload::~Upload() {
   if (!committed_ && !tmp_path_.empty()) {
     out_.close();
@@ -74,8 +92,9 @@ absl::Status Upload::Write(const std::string& bytes) {
                                                    header_.total_bytes(), " bytes"));
   }
   sha_.Update(bytes);
+  errno = 0;
   out_.write(bytes.data(), static_cast<std::streamsize>(bytes.size()));
-  if (!out_) return absl::UnavailableError(absl::StrCat(tmp_path_, ": write failed (disk full?)"));
+  if (!out_) return DiskWriteError(tmp_path_, "write failed");
   return absl::OkStatus();
 }
 
@@ -93,7 +112,16 @@ absl::Status Coordinator::Start() {
   {
     std::lock_guard<std::mutex> lock(mu_);
     absl::Status st = RequeueLapsed(deferred);
-    if (!st.ok()) return st;
+    if (absl::IsUnavailable(st) || absl::IsResourceExhausted(st)) {
+      // Disk trouble (read-only, full): serve what is stored; the sweep sends the lapsed leases
+      // back once the data dir can be written again.
+      log_->warn("sending back leases that lapsed while graftd was down failed: {}; serving what is stored, "
+                 "new work is refused until the data dir can be written",
+                 std::string(st.message()));
+      last_sweep_error_ = std::string(st.message());
+    } else if (!st.ok()) {
+      return st;
+    }
     auto workers = store_->Workers();
     if (workers.ok()) next_worker_ = static_cast<int64_t>(workers->size()) + 1;
   }
@@ -790,14 +818,18 @@ absl::StatusOr<std::unique_ptr<Upload>> Coordinator::BeginUpload(const Principal
   if (ec) return absl::UnavailableError(absl::StrCat(dir.string(), ": ", ec.message()));
   up->final_path_ = (dir / header.name()).string();
   up->tmp_path_ = absl::StrCat(up->final_path_, ".attempt", header.attempt(), ".tmp");
+  errno = 0;
   up->out_.open(up->tmp_path_, std::ios::binary | std::ios::trunc);
-  if (!up->out_) return absl::UnavailableError(absl::StrCat(up->tmp_path_, ": cannot write"));
+  if (!up->out_) return DiskWriteError(up->tmp_path_, "cannot create");
   return up;
 }
 
 absl::StatusOr<int64_t> Coordinator::CommitUpload(Upload& up) {
+  // The last buffered bytes reach the disk here: a full disk may show only now.
+  errno = 0;
   up.out_.flush();
   up.out_.close();
+  if (!up.out_) return DiskWriteError(up.tmp_path_, "write failed");
   if (up.written_ != up.header_.total_bytes()) {
     return absl::DataLossError(absl::StrCat("upload of ", up.header_.name(), " ended after ", up.written_,
                                             " of ", up.header_.total_bytes(), " bytes"));
@@ -1063,7 +1095,16 @@ void Coordinator::Sweep() {
   {
     std::lock_guard<std::mutex> lock(mu_);
     absl::Status st = RequeueLapsed(deferred);
-    if (!st.ok()) log_->error("checking leases failed: {}", st.ToString());
+    // Logged when it starts and when it ends, not once per sweep.
+    const std::string error = st.ok() ? std::string() : std::string(st.message());
+    if (error != last_sweep_error_) {
+      if (!st.ok()) {
+        log_->error("checking leases failed: {}", st.ToString());
+      } else {
+        log_->info("checking leases works again");
+      }
+      last_sweep_error_ = error;
+    }
     const int64_t now = clock_->NowMs();
     for (auto it = waiters_.begin(); it != waiters_.end();) {
       if (it->deadline_ms <= now) {

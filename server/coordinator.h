@@ -212,6 +212,7 @@ class Coordinator {
   std::map<std::string, int64_t> seen_ms_;       // worker -> its last call, newer than the store's; guarded by mu_
   std::map<std::string, int64_t> pending_;       // "ARRAYJOB_TASK" -> submitted_ms; guarded by mu_
   bool stopping_ = false;                        // guarded by mu_
+  std::string last_sweep_error_;                 // the sweep's last failure ("" if it worked); guarded by mu_
   std::condition_variable wake_;
   std::thread sweeper_;
 };

@@ -5,6 +5,7 @@
 #include <sqlite3.h>
 
 #include <cstdint>
+#include <filesystem>
 #include <map>
 #include <memory>
 #include <mutex>
@@ -142,6 +143,27 @@ absl::StatusOr<std::map<std::string, std::string>> LabelsFromJson(int64_t job_id
   return labels;
 }
 
+// The status of a failed SQLite call with result code `rc`: a busy or locked database is
+// Unavailable (try again); a full disk is ResourceExhausted and a disk that cannot be written
+// (read-only, permissions, I/O errors) Unavailable, both saying so before SQLite's own message;
+// anything else is Internal.
+absl::Status StoreError(int rc, const std::string& message) {
+  switch (rc & 0xff) {
+    case SQLITE_BUSY:
+    case SQLITE_LOCKED:
+      return absl::UnavailableError(message);
+    case SQLITE_FULL:
+      return absl::ResourceExhaustedError(absl::StrCat("the data dir's disk is full: ", message));
+    case SQLITE_READONLY:
+    case SQLITE_CANTOPEN:
+    case SQLITE_PERM:
+    case SQLITE_IOERR:
+      return absl::UnavailableError(absl::StrCat("the data dir's disk cannot be written: ", message));
+    default:
+      return absl::InternalError(message);
+  }
+}
+
 // A cached prepared statement in use. On destruction it is reset and its bindings cleared,
 // ready for the next user. Bind errors are remembered and reported by the next Step().
 class Statement {
@@ -197,11 +219,8 @@ class Statement {
     if (rc != SQLITE_OK && bind_rc_ == SQLITE_OK) bind_rc_ = rc;
   }
   absl::Status Error(int rc) const {
-    std::string message = absl::StrCat("job store ", op_, ": ", sqlite3_errmsg(db_), " (sqlite code ",
-                                       sqlite3_extended_errcode(db_), ")");
-    const int primary = rc & 0xff;
-    if (primary == SQLITE_BUSY || primary == SQLITE_LOCKED) return absl::UnavailableError(message);
-    return absl::InternalError(message);
+    return StoreError(rc, absl::StrCat("job store ", op_, ": ", sqlite3_errmsg(db_), " (sqlite code ",
+                                       sqlite3_extended_errcode(db_), ")"));
   }
 
   sqlite3* db_;
@@ -290,11 +309,8 @@ class SqliteJobStore final : public JobStore {
 
 absl::Status SqliteJobStore::ErrorStatus(const std::string& op) const {
   const int code = sqlite3_extended_errcode(db_);
-  std::string message =
-      absl::StrCat("job store ", op, " (", path_, "): ", sqlite3_errmsg(db_), " (sqlite code ", code, ")");
-  const int primary = code & 0xff;
-  if (primary == SQLITE_BUSY || primary == SQLITE_LOCKED) return absl::UnavailableError(message);
-  return absl::InternalError(message);
+  return StoreError(code, absl::StrCat("job store ", op, " (", path_, "): ", sqlite3_errmsg(db_), " (sqlite code ",
+                                       code, ")"));
 }
 
 absl::StatusOr<Statement> SqliteJobStore::Prepare(const std::string& sql, const std::string& op) {
@@ -363,9 +379,19 @@ absl::Status SqliteJobStore::Initialise(Durability durability) {
         CurrentSchemaVersion(), "; open it with the graftd that wrote it (or a newer one)"));
   }
 
-  absl::StatusOr<std::string> mode = PragmaText("PRAGMA journal_mode=WAL", "open: journal_mode");
+  // A database the OS will not let us write (a read-only data dir or file) is opened for reads:
+  // graftd serves what it has, and every write fails with Unavailable naming the disk.
+  const bool read_only = sqlite3_db_readonly(db_, "main") == 1;
+  if (read_only && *version != CurrentSchemaVersion()) {
+    return absl::FailedPreconditionError(absl::StrCat("job store ", path_, " cannot be written and has schema version ",
+                                                      *version, "; this graftd must migrate it to version ",
+                                                      CurrentSchemaVersion(), " first: make the data dir writable"));
+  }
+  // Read-only, the journal mode is the file's (an immutable open reports "delete"): nothing is written.
+  absl::StatusOr<std::string> mode =
+      PragmaText(read_only ? "PRAGMA journal_mode" : "PRAGMA journal_mode=WAL", "open: journal_mode");
   if (!mode.ok()) return mode.status();
-  if (*mode != "wal") {
+  if (*mode != "wal" && !read_only) {
     return absl::FailedPreconditionError(absl::StrCat("job store ", path_, ": cannot switch to WAL mode (journal_mode is '",
                                                       *mode, "'); the database needs a local disk file"));
   }
@@ -383,7 +409,7 @@ absl::Status SqliteJobStore::Initialise(Durability durability) {
   absl::StatusOr<int64_t> fk = PragmaInt("PRAGMA foreign_keys", "open: foreign_keys");
   if (!fk.ok()) return fk.status();
   if (*fk != 1) return absl::InternalError(absl::StrCat("job store ", path_, ": foreign keys could not be enabled"));
-  return Migrate();
+  return read_only ? absl::OkStatus() : Migrate();
 }
 
 absl::Status SqliteJobStore::Migrate() {
@@ -959,6 +985,37 @@ absl::StatusOr<std::unique_ptr<JobStore>> OpenSqliteJobStore(const std::string& 
     sqlite3_close_v2(db);
     if ((rc & 0xff) == SQLITE_BUSY) return absl::UnavailableError(message);
     return absl::InternalError(message);
+  }
+  if (sqlite3_db_readonly(db, "main") == 1) {
+    // The OS will not let us write the file (a read-only data dir or file). SQLite then still
+    // needs the -shm file beside it to read a WAL database; when graftd last stopped cleanly
+    // there is none and none can be made, but neither is there a -wal file with content, so the
+    // file alone is the whole database: open it as immutable. With a -wal file left (graftd was
+    // killed), the existing -shm serves.
+    std::error_code ec;
+    const auto wal_bytes = std::filesystem::file_size(path + "-wal", ec);
+    if (ec || wal_bytes == 0) {
+      sqlite3_close_v2(db);
+      db = nullptr;
+      std::string uri = "file:";
+      for (char ch : path) {
+        if (ch == '%' || ch == '?' || ch == '#') {
+          static constexpr char kHex[] = "0123456789abcdef";
+          uri += {'%', kHex[(ch >> 4) & 0xf], kHex[ch & 0xf]};
+        } else {
+          uri += ch;
+        }
+      }
+      uri += "?immutable=1";
+      const int ro = sqlite3_open_v2(uri.c_str(), &db, SQLITE_OPEN_READONLY | SQLITE_OPEN_URI | SQLITE_OPEN_NOMUTEX,
+                                     nullptr);
+      if (ro != SQLITE_OK) {
+        std::string message = absl::StrCat("job store: cannot open ", path, " for reading: ",
+                                           db != nullptr ? sqlite3_errmsg(db) : sqlite3_errstr(ro));
+        sqlite3_close_v2(db);
+        return StoreError(ro, message);
+      }
+    }
   }
   auto store = std::make_unique<SqliteJobStore>(path, db);
   absl::Status st = store->Initialise(durability);

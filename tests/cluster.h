@@ -70,12 +70,14 @@ class Cluster {
     StartCoordinator();
   }
 
-  void StartCoordinator() {
+  // Starts graftd on the cluster's address, data dir and tokens. `run_as` goes before graftd's
+  // own command line (e.g. setpriv dropping to another user); empty: as this process.
+  void StartCoordinator(const std::vector<std::string>& run_as = {}) {
     std::remove((dir_.path() + "/port").c_str());
-    std::vector<std::string> argv = {BinaryDir() + "/bin/graftd", "--listen", "127.0.0.1:" + std::to_string(port_),
-                                     "--data-dir", dir_.path() + "/data", "--tokens-file", dir_.path() + "/tokens.yaml",
-                                     "--lease-seconds", std::to_string(lease_seconds_), "--port-file",
-                                     dir_.path() + "/port"};
+    std::vector<std::string> argv = run_as;
+    argv.insert(argv.end(), {BinaryDir() + "/bin/graftd", "--listen", "127.0.0.1:" + std::to_string(port_), "--data-dir",
+                             dir_.path() + "/data", "--tokens-file", dir_.path() + "/tokens.yaml", "--lease-seconds",
+                             std::to_string(lease_seconds_), "--port-file", dir_.path() + "/port"});
     if (tls_.enabled()) {
       argv.insert(argv.end(), {"--tls-cert", tls_.certs_dir + "/server.pem", "--tls-key", tls_.certs_dir + "/server.key"});
       if (tls_.mutual) argv.insert(argv.end(), {"--client-ca", tls_.ca()});
@@ -101,6 +103,11 @@ class Cluster {
   }
   // Sends `signal` to graftd (e.g. SIGHUP: reread the tokens file); false if it is gone.
   bool SignalCoordinator(int signal) { return graftd_->Signal(signal); }
+  // SIGTERM, then waits for graftd to exit; its exit code (-1 if it did not within 30 s).
+  int StopCoordinator() {
+    graftd_->Signal(SIGTERM);
+    return graftd_->Wait(30000);
+  }
   void KillCoordinator() {
     graftd_->Signal(SIGKILL);
     graftd_->Wait(10000);

@@ -12,6 +12,7 @@
 #include <chrono>
 #include <filesystem>
 #include <fstream>
+#include <iostream>
 #include <map>
 #include <memory>
 #include <mutex>
@@ -606,6 +607,186 @@ TEST(Fault, AWorkerWhoseWorkDirFillsHandsItsJobBack) {
   auto w2 = c.StartWorker("w2");
   ASSERT_TRUE(c.WaitState(id, v1::JOB_STATE_SUCCEEDED, 180000)) << c.Log() << ReadFile(w2->log_path());
   EXPECT_EQ(c.Metrics(id).size(), 7u);
+}
+
+// `PRAGMA integrity_check` of the cluster's database, read with SQLite's own library (not graft's
+// store): "ok" when the file is sound.
+std::string IntegrityCheck(const Cluster& c) {
+  sqlite3* db = nullptr;
+  std::string answer = "cannot open";
+  if (sqlite3_open_v2((c.dir() + "/data/graft.db").c_str(), &db, SQLITE_OPEN_READONLY, nullptr) == SQLITE_OK) {
+    sqlite3_busy_timeout(db, 10000);
+    sqlite3_stmt* q = nullptr;
+    sqlite3_prepare_v2(db, "PRAGMA integrity_check", -1, &q, nullptr);
+    answer = sqlite3_step(q) == SQLITE_ROW ? reinterpret_cast<const char*>(sqlite3_column_text(q, 0)) : sqlite3_errmsg(db);
+    sqlite3_finalize(q);
+  }
+  sqlite3_close(db);
+  return answer;
+}
+
+// Runs a command as the unprivileged user nobody (uid and gid 65534, no other groups).
+const std::vector<std::string> kAsNobody = {"/usr/bin/setpriv", "--reuid=65534", "--regid=65534", "--clear-groups"};
+std::string AsNobody(const std::string& command) {
+  return "/usr/bin/setpriv --reuid=65534 --regid=65534 --clear-groups " + command;
+}
+
+grpc::Status TrySubmit(Cluster& c, const std::vector<std::string>& sets, std::string* id) {
+  v1::SubmitJobRequest req;
+  req.set_config_yaml(ReadFile(SourceDir() + "/configs/parcel-routing.yaml"));
+  req.set_source_name("parcel-routing.yaml");
+  for (const auto& set : sets) req.add_overrides(set);
+  v1::SubmitJobResponse resp;
+  grpc::Status s = c.jobs().SubmitJob(c.Ctx(kAlice).get(), req, &resp);
+  *id = resp.job_id();
+  return s;
+}
+
+size_t CountListed(Cluster& c) {
+  v1::ListJobsRequest req;
+  v1::ListJobsResponse resp;
+  grpc::Status s = c.jobs().ListJobs(c.Ctx(kAlice).get(), req, &resp);
+  EXPECT_TRUE(s.ok()) << s.error_message();
+  return static_cast<size_t>(resp.jobs_size());
+}
+
+void ExpectSamePoints(const std::vector<v1::Point>& kept, const std::vector<v1::Point>& now) {
+  std::map<int64_t, std::string> stored;
+  for (const auto& p : now) stored[p.step()] = p.metrics_json();
+  for (const auto& p : kept) {
+    ASSERT_TRUE(stored.count(p.step())) << "the acknowledged point at step " << p.step() << " was lost";
+    EXPECT_EQ(stored[p.step()], p.metrics_json()) << "step " << p.step();
+  }
+}
+
+const std::vector<std::string> kTinyJob = {"training.steps=100", "evaluation.every=50", "evaluation.triples=256",
+                                           "training.checkpoint_every=50"};
+
+// graftd run as an unprivileged user on a data dir it cannot write (root ignores permission
+// bits, so the test drops to nobody, and first proves that nobody's writes there fail), after a
+// clean stop (no -wal file left) and after a SIGKILL (-wal and -shm left): it starts, serves every
+// stored job and point, refuses new work with UNAVAILABLE naming the disk, and the database is
+// sound afterwards.
+TEST(Fault, OnAReadOnlyDataDirGraftdServesWhatItHasAndRefusesNewWork) {
+  for (const bool killed : {false, true}) {
+    SCOPED_TRACE(killed ? "graftd was killed" : "graftd stopped cleanly");
+    Cluster c;
+    const std::string done = c.Submit(kAlice, "parcel-routing", kTinyJob);
+    {
+      auto w = c.StartWorker("w1");
+      ASSERT_TRUE(c.WaitState(done, v1::JOB_STATE_SUCCEEDED, 180000)) << c.Log() << ReadFile(w->log_path());
+    }
+    // Queued, or leased to the killed worker's long poll, which graftd still held: either way stored.
+    const std::string queued = c.Submit(kAlice, "parcel-routing", kTinyJob);
+    const v1::JobState queued_state = c.Get(queued).state();
+    const std::vector<v1::Point> points = c.Metrics(done);
+    ASSERT_EQ(points.size(), 3u);  // steps 0, 50 and 100
+    if (killed) {
+      c.KillCoordinator();
+      ASSERT_TRUE(std::filesystem::exists(c.dir() + "/data/graft.db-wal"));
+    } else {
+      ASSERT_EQ(c.StopCoordinator(), 0) << c.Log();
+      ASSERT_FALSE(std::filesystem::exists(c.dir() + "/data/graft.db-wal"));
+    }
+
+    // Root keeps the data dir and its files (0755, 0644); nobody gets the cluster's own dir (for
+    // graftd's port file) and the tokens file.
+    const std::string data = c.dir() + "/data";
+    for (const std::string& cmd : {"chown 65534:65534 " + c.dir() + " " + c.dir() + "/tokens.yaml",
+                                   "chmod 0755 " + c.dir(), "chmod -R u+rwX,go+rX,go-w " + data}) {
+      auto r = RunCommand(cmd);
+      ASSERT_EQ(r.exit_code, 0) << cmd << ": " << r.output;
+    }
+    auto probe = RunCommand(AsNobody("/usr/bin/touch " + data + "/probe"));
+    ASSERT_NE(probe.exit_code, 0) << "nobody could write into " << data << ": the test proves nothing";
+    probe = RunCommand(AsNobody("/usr/bin/touch " + c.dir() + "/probe"));
+    ASSERT_EQ(probe.exit_code, 0) << "nobody cannot write its own dir: " << probe.output;
+
+    c.StartCoordinator(kAsNobody);
+    EXPECT_EQ(c.Get(done).state(), v1::JOB_STATE_SUCCEEDED) << c.Log();
+    EXPECT_EQ(c.Get(queued).state(), queued_state);
+    EXPECT_EQ(CountListed(c), 2u);
+    ExpectSamePoints(points, c.Metrics(done));
+    EXPECT_EQ(c.Metrics(done).size(), points.size());
+
+    std::string id;
+    grpc::Status s = TrySubmit(c, kTinyJob, &id);
+    EXPECT_EQ(s.error_code(), grpc::StatusCode::UNAVAILABLE) << s.error_message();
+    EXPECT_NE(s.error_message().find("the data dir's disk cannot be written"), std::string::npos) << s.error_message();
+    std::cout << "read-only data dir (" << (killed ? "after a kill" : "after a clean stop") << "): " << s.error_message()
+              << "\n";
+    v1::RegisterWorkerRequest reg;
+    reg.set_host("late-node");
+    v1::RegisterWorkerResponse registered;
+    s = c.workers().RegisterWorker(c.Ctx(::graft::testing::kWorker).get(), reg, &registered);
+    EXPECT_EQ(s.error_code(), grpc::StatusCode::UNAVAILABLE) << s.error_message();
+    EXPECT_NE(s.error_message().find("the data dir's disk cannot be written"), std::string::npos) << s.error_message();
+    EXPECT_EQ(CountListed(c), 2u);  // nothing half-stored
+
+    ASSERT_EQ(c.StopCoordinator(), 0) << c.Log();
+    EXPECT_EQ(IntegrityCheck(c), "ok");
+  }
+}
+
+// graftd on a small tmpfs that fills while a worker reports and uploads: new work is refused with
+// RESOURCE_EXHAUSTED naming the disk, reads go on, the worker keeps resending, no acknowledged
+// point is lost; once space is freed the job finishes and new work is taken, without a restart.
+TEST(Fault, OnAFullDiskGraftdRefusesWorkLosesNothingAndGoesOnOnceFreed) {
+  Cluster c;
+  ASSERT_EQ(c.StopCoordinator(), 0) << c.Log();
+  const std::string data = c.dir() + "/data";
+  std::filesystem::remove_all(data);
+  ScopedTmpfs tmpfs(data, 4096);
+  ASSERT_TRUE(tmpfs.mounted());
+  c.StartCoordinator();
+
+  const std::string id = c.Submit(kAlice, "parcel-routing",
+                                  {"training.steps=400", "evaluation.every=50", "evaluation.triples=256",
+                                   "training.checkpoint_every=50"});
+  auto w = c.StartWorker("w1");
+  ASSERT_TRUE(WaitFor([&] { return !c.Metrics(id).empty(); }, 180000)) << c.Log() << ReadFile(w->log_path());
+
+  // Fill the disk: 16 KiB writes until one fails (proving it is full), the filler kept open.
+  const std::string filler = data + "/filler";
+  {
+    std::ofstream out(filler, std::ios::binary);
+    const std::string chunk(16 << 10, 'f');
+    for (int i = 0; i < 4096 && out; ++i) out.write(chunk.data(), static_cast<std::streamsize>(chunk.size())).flush();
+    ASSERT_FALSE(out.good()) << "64 MiB fit in a 4 MiB tmpfs";
+  }
+  // New work is refused (the database may still have a few free pages: submit until it says so).
+  grpc::Status refused;
+  std::vector<std::string> accepted;
+  for (int i = 0; i < 200 && refused.ok(); ++i) {
+    std::string more;
+    refused = TrySubmit(c, kTinyJob, &more);
+    if (refused.ok()) accepted.push_back(more);
+  }
+  EXPECT_EQ(refused.error_code(), grpc::StatusCode::RESOURCE_EXHAUSTED) << refused.error_message();
+  EXPECT_NE(refused.error_message().find("the data dir's disk is full"), std::string::npos) << refused.error_message();
+  std::cout << "disk full: " << accepted.size() << " submissions accepted, then: " << refused.error_message() << "\n";
+  // The worker's reports are refused too, and it keeps resending.
+  ASSERT_TRUE(WaitFor([&] { return Contains(w->log_path(), "the data dir's disk is full"); }, 180000))
+      << ReadFile(w->log_path());
+  // Reads go on.
+  const std::vector<v1::Point> kept = c.Metrics(id);
+  EXPECT_FALSE(kept.empty());
+  EXPECT_EQ(c.Get(id).state(), v1::JOB_STATE_RUNNING);
+  EXPECT_EQ(CountListed(c), 1 + accepted.size());
+
+  std::filesystem::remove(filler);
+  ASSERT_TRUE(c.WaitState(id, v1::JOB_STATE_SUCCEEDED, 300000)) << c.Log() << ReadFile(w->log_path());
+  const std::vector<v1::Point> final_points = c.Metrics(id);
+  ExpectSamePoints(kept, final_points);
+  EXPECT_EQ(final_points.size(), 9u);  // steps 0, 50, ..., 400
+  std::string after;
+  ASSERT_TRUE(TrySubmit(c, kTinyJob, &after).ok());
+  accepted.push_back(after);
+  for (const std::string& more : accepted) {
+    EXPECT_TRUE(c.WaitState(more, v1::JOB_STATE_SUCCEEDED, 180000)) << more << "\n" << c.Log();
+  }
+  ASSERT_EQ(c.StopCoordinator(), 0) << c.Log();
+  EXPECT_EQ(IntegrityCheck(c), "ok");
 }
 
 }  // namespace
