@@ -263,118 +263,59 @@ grpc::Status Drain(Reader& rd, Event* e) {
   return rd->Finish();
 }
 
+// Decodes the request and makes the call; false when the bytes are not a request of this kind.
+using RpcCall = std::function<bool(Env&, const Caller&, const std::string&, grpc::Status*)>;
+
 struct Rpc {
   const char* name;
   bool worker_service;
   bool stream;  // a watch: DEADLINE_EXCEEDED from the harness's own deadline is allowed
-  // Decodes the request and makes the call; false when the bytes are not a request of this kind.
-  std::function<bool(Env&, const Caller&, const std::string&, grpc::Status*)> call;
+  RpcCall call;
 };
+
+// A unary call of one of the two stubs (`stub`: &Env::jobs or &Env::workers).
+template <typename Stub, typename Req, typename Resp>
+RpcCall Unary(Stub& (Env::*stub)(), grpc::Status (Stub::*method)(grpc::ClientContext*, const Req&, Resp*),
+              int timeout_ms = 5000) {
+  return [stub, method, timeout_ms](Env& env, const Caller& who, const std::string& b, grpc::Status* s) {
+    Req r;
+    Resp o;
+    if (!Decode(b, &r)) return false;
+    *s = ((env.*stub)().*method)(env.Ctx(who, timeout_ms).get(), r, &o);
+    return true;
+  };
+}
+
+// A server-streaming call, read to its end.
+template <typename Stub, typename Req, typename Event>
+RpcCall Streamed(Stub& (Env::*stub)(),
+                 std::unique_ptr<grpc::ClientReader<Event>> (Stub::*method)(grpc::ClientContext*, const Req&),
+                 int timeout_ms = 5000) {
+  return [stub, method, timeout_ms](Env& env, const Caller& who, const std::string& b, grpc::Status* s) {
+    Req r;
+    if (!Decode(b, &r)) return false;
+    auto ctx = env.Ctx(who, timeout_ms);
+    auto rd = ((env.*stub)().*method)(ctx.get(), r);
+    Event e;
+    *s = Drain(rd, &e);
+    return true;
+  };
+}
 
 const std::vector<Rpc>& Rpcs() {
   static const std::vector<Rpc> rpcs = {
-      {"SubmitJob", false, false,
-       [](Env& env, const Caller& who, const std::string& b, grpc::Status* s) {
-         v1::SubmitJobRequest r;
-         v1::SubmitJobResponse o;
-         if (!Decode(b, &r)) return false;
-         *s = env.jobs().SubmitJob(env.Ctx(who, 20000).get(), r, &o);
-         return true;
-       }},
-      {"GetJob", false, false,
-       [](Env& env, const Caller& who, const std::string& b, grpc::Status* s) {
-         v1::GetJobRequest r;
-         v1::Job o;
-         if (!Decode(b, &r)) return false;
-         *s = env.jobs().GetJob(env.Ctx(who).get(), r, &o);
-         return true;
-       }},
-      {"ListJobs", false, false,
-       [](Env& env, const Caller& who, const std::string& b, grpc::Status* s) {
-         v1::ListJobsRequest r;
-         v1::ListJobsResponse o;
-         if (!Decode(b, &r)) return false;
-         *s = env.jobs().ListJobs(env.Ctx(who).get(), r, &o);
-         return true;
-       }},
-      {"CancelJob", false, false,
-       [](Env& env, const Caller& who, const std::string& b, grpc::Status* s) {
-         v1::CancelJobRequest r;
-         v1::Job o;
-         if (!Decode(b, &r)) return false;
-         *s = env.jobs().CancelJob(env.Ctx(who).get(), r, &o);
-         return true;
-       }},
-      {"WatchJob", false, true,
-       [](Env& env, const Caller& who, const std::string& b, grpc::Status* s) {
-         v1::WatchJobRequest r;
-         if (!Decode(b, &r)) return false;
-         auto ctx = env.Ctx(who, 20);
-         auto rd = env.jobs().WatchJob(ctx.get(), r);
-         v1::JobEvent e;
-         *s = Drain(rd, &e);
-         return true;
-       }},
-      {"WatchSweep", false, true,
-       [](Env& env, const Caller& who, const std::string& b, grpc::Status* s) {
-         v1::WatchSweepRequest r;
-         if (!Decode(b, &r)) return false;
-         auto ctx = env.Ctx(who, 20);
-         auto rd = env.jobs().WatchSweep(ctx.get(), r);
-         v1::SweepEvent e;
-         *s = Drain(rd, &e);
-         return true;
-       }},
-      {"CancelSweep", false, false,
-       [](Env& env, const Caller& who, const std::string& b, grpc::Status* s) {
-         v1::CancelSweepRequest r;
-         v1::CancelSweepResponse o;
-         if (!Decode(b, &r)) return false;
-         *s = env.jobs().CancelSweep(env.Ctx(who).get(), r, &o);
-         return true;
-       }},
-      {"GetMetrics", false, false,
-       [](Env& env, const Caller& who, const std::string& b, grpc::Status* s) {
-         v1::GetMetricsRequest r;
-         v1::GetMetricsResponse o;
-         if (!Decode(b, &r)) return false;
-         *s = env.jobs().GetMetrics(env.Ctx(who).get(), r, &o);
-         return true;
-       }},
-      {"DownloadArtifact", false, false,
-       [](Env& env, const Caller& who, const std::string& b, grpc::Status* s) {
-         v1::DownloadArtifactRequest r;
-         if (!Decode(b, &r)) return false;
-         auto ctx = env.Ctx(who);
-         auto rd = env.jobs().DownloadArtifact(ctx.get(), r);
-         v1::ArtifactChunk ch;
-         *s = Drain(rd, &ch);
-         return true;
-       }},
-      {"GetServerInfo", false, false,
-       [](Env& env, const Caller& who, const std::string& b, grpc::Status* s) {
-         v1::GetServerInfoRequest r;
-         v1::ServerInfo o;
-         if (!Decode(b, &r)) return false;
-         *s = env.jobs().GetServerInfo(env.Ctx(who).get(), r, &o);
-         return true;
-       }},
-      {"ListWorkers", false, false,
-       [](Env& env, const Caller& who, const std::string& b, grpc::Status* s) {
-         v1::ListWorkersRequest r;
-         v1::ListWorkersResponse o;
-         if (!Decode(b, &r)) return false;
-         *s = env.jobs().ListWorkers(env.Ctx(who).get(), r, &o);
-         return true;
-       }},
-      {"RegisterWorker", true, false,
-       [](Env& env, const Caller& who, const std::string& b, grpc::Status* s) {
-         v1::RegisterWorkerRequest r;
-         v1::RegisterWorkerResponse o;
-         if (!Decode(b, &r)) return false;
-         *s = env.workers().RegisterWorker(env.Ctx(who).get(), r, &o);
-         return true;
-       }},
+      {"SubmitJob", false, false, Unary(&Env::jobs, &v1::Jobs::Stub::SubmitJob, 20000)},
+      {"GetJob", false, false, Unary(&Env::jobs, &v1::Jobs::Stub::GetJob)},
+      {"ListJobs", false, false, Unary(&Env::jobs, &v1::Jobs::Stub::ListJobs)},
+      {"CancelJob", false, false, Unary(&Env::jobs, &v1::Jobs::Stub::CancelJob)},
+      {"WatchJob", false, true, Streamed(&Env::jobs, &v1::Jobs::Stub::WatchJob, 20)},
+      {"WatchSweep", false, true, Streamed(&Env::jobs, &v1::Jobs::Stub::WatchSweep, 20)},
+      {"CancelSweep", false, false, Unary(&Env::jobs, &v1::Jobs::Stub::CancelSweep)},
+      {"GetMetrics", false, false, Unary(&Env::jobs, &v1::Jobs::Stub::GetMetrics)},
+      {"DownloadArtifact", false, false, Streamed(&Env::jobs, &v1::Jobs::Stub::DownloadArtifact)},
+      {"GetServerInfo", false, false, Unary(&Env::jobs, &v1::Jobs::Stub::GetServerInfo)},
+      {"ListWorkers", false, false, Unary(&Env::jobs, &v1::Jobs::Stub::ListWorkers)},
+      {"RegisterWorker", true, false, Unary(&Env::workers, &v1::Workers::Stub::RegisterWorker)},
       {"LeaseJob", true, false,
        [](Env& env, const Caller& who, const std::string& b, grpc::Status* s) {
          v1::LeaseJobRequest r;
@@ -384,24 +325,8 @@ const std::vector<Rpc>& Rpcs() {
          *s = env.workers().LeaseJob(env.Ctx(who).get(), r, &o);
          return true;
        }},
-      {"Report", true, false,
-       [](Env& env, const Caller& who, const std::string& b, grpc::Status* s) {
-         v1::ReportRequest r;
-         v1::ReportResponse o;
-         if (!Decode(b, &r)) return false;
-         *s = env.workers().Report(env.Ctx(who).get(), r, &o);
-         return true;
-       }},
-      {"FetchCheckpoint", true, false,
-       [](Env& env, const Caller& who, const std::string& b, grpc::Status* s) {
-         v1::FetchCheckpointRequest r;
-         if (!Decode(b, &r)) return false;
-         auto ctx = env.Ctx(who);
-         auto rd = env.workers().FetchCheckpoint(ctx.get(), r);
-         v1::ArtifactChunk ch;
-         *s = Drain(rd, &ch);
-         return true;
-       }},
+      {"Report", true, false, Unary(&Env::workers, &v1::Workers::Stub::Report)},
+      {"FetchCheckpoint", true, false, Streamed(&Env::workers, &v1::Workers::Stub::FetchCheckpoint)},
       {"UploadArtifact", true, false,
        [](Env& env, const Caller& who, const std::string& b, grpc::Status* s) {
          // The bytes are the messages of the stream, each prefixed by its length (one byte).
@@ -423,22 +348,8 @@ const std::vector<Rpc>& Rpcs() {
          *s = wr->Finish();
          return true;
        }},
-      {"FinishJob", true, false,
-       [](Env& env, const Caller& who, const std::string& b, grpc::Status* s) {
-         v1::FinishJobRequest r;
-         v1::FinishJobResponse o;
-         if (!Decode(b, &r)) return false;
-         *s = env.workers().FinishJob(env.Ctx(who).get(), r, &o);
-         return true;
-       }},
-      {"DeregisterWorker", true, false,
-       [](Env& env, const Caller& who, const std::string& b, grpc::Status* s) {
-         v1::DeregisterWorkerRequest r;
-         v1::DeregisterWorkerResponse o;
-         if (!Decode(b, &r)) return false;
-         *s = env.workers().DeregisterWorker(env.Ctx(who).get(), r, &o);
-         return true;
-       }},
+      {"FinishJob", true, false, Unary(&Env::workers, &v1::Workers::Stub::FinishJob)},
+      {"DeregisterWorker", true, false, Unary(&Env::workers, &v1::Workers::Stub::DeregisterWorker)},
   };
   return rpcs;
 }
