@@ -396,6 +396,29 @@ TEST(Limits, MechanismTablesAreBoundedInAll) {
                  "this coordinator accepts at most max_table_entries = 40 entries in all");
 }
 
+// max_listed_input_space bounds listed spaces only and max_parent_space each mechanism's table; a
+// 10^9-input space (split by a hash, nothing listed) passes both. Catches either setting read but
+// not passed on, and a listed-space bound that also refuses hashed spaces.
+TEST(Limits, ListedSpacesAndEachMechanismTableAreBounded) {
+  LimitedCluster lc("max_listed_input_space: 100\nmax_parent_space: 20\n");
+  const std::string parcel = ReadFile(SourceDir() + "/configs/parcel-routing.yaml");
+  EXPECT_REFUSED(SubmitText(*lc.cluster, kAlice, parcel), INVALID_ARGUMENT,
+                 "parcel.yaml:10:14: the input space passes 100 combinations of input values at 'weight'; a space of "
+                 "at most 16777216 inputs is listed, and this coordinator lists at most max_listed_input_space = 100");
+  // 5 x 5 x 2 x 2 = 100 inputs; 'local' reads origin x dest, 25 values.
+  const std::vector<std::string> small = {"algorithm.inputs.origin=[north, south, east, west, central]",
+                                          "algorithm.inputs.dest=[north, south, east, west, central]",
+                                          "algorithm.inputs.weight=[heavy, oversize]"};
+  EXPECT_REFUSED(SubmitText(*lc.cluster, kAlice, parcel, small), INVALID_ARGUMENT,
+                 "parcel.yaml:13:14: 'local' reads 25 combinations of its parents' values (origin 5 x dest 5), more "
+                 "than its lookup table may hold: this coordinator accepts at most max_parent_space = 20 per mechanism");
+  std::string nine = "name: nine\nalgorithm:\n  inputs:\n";
+  for (int i = 1; i <= 9; ++i) nine += "    d" + std::to_string(i) + ": {range: [0, 9]}\n";
+  nine += "  mechanisms:\n    left: (d1 + d2) % 10\n  output:\n    tally: {expr: \"(left + d3) % 10\"}\n"
+          "network: {hidden: [16]}\nalignment:\n  left: {layer: 0, units: 0-3}\ntraining: {steps: 2}\n";
+  EXPECT_TRUE(SubmitText(*lc.cluster, kAlice, nine).ok());
+}
+
 // With the default settings: a network of about 4e9 parameters, a 1 MB label and an alias bomb
 // were all accepted (the bomb grew graftd past 15 GB); now each is refused and graftd still serves.
 TEST(Limits, DefaultsRefuseTheIssuesExamples) {
@@ -530,6 +553,8 @@ TEST(Limits, ShippedSettingsFileShowsTheDefaults) {
       {"max_domain_values", loaded.spec_limits.max_domain_values, d.spec_limits.max_domain_values},
       {"max_table_entries", loaded.spec_limits.max_table_entries, d.spec_limits.max_table_entries},
       {"max_input_space", loaded.spec_limits.max_input_space, d.spec_limits.max_input_space},
+      {"max_listed_input_space", loaded.spec_limits.max_listed_input_space, d.spec_limits.max_listed_input_space},
+      {"max_parent_space", loaded.spec_limits.max_parent_space, d.spec_limits.max_parent_space},
       {"max_network_parameters", loaded.spec_limits.max_network_parameters, d.spec_limits.max_network_parameters},
       {"max_steps", loaded.spec_limits.max_steps, d.spec_limits.max_steps},
       {"max_artifact_bytes", loaded.max_artifact_bytes, d.max_artifact_bytes},

@@ -8,6 +8,7 @@
 #include "tests/test_util.h"
 #include "trainer/causal/model.h"
 #include "trainer/causal/rng.h"
+#include "trainer/causal/split.h"
 
 namespace graft::causal {
 namespace {

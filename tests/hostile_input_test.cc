@@ -190,6 +190,13 @@ TEST(SpecLimits, EachLimitIsRefusedByNameAtItsPlace) {
        "max_input_space = 100"},
       {"table entries", {}, [](SpecLimits& l) { l.max_table_entries = 40; },
        "this coordinator accepts at most max_table_entries = 40 entries in all"},
+      {"listed input space", {}, [](SpecLimits& l) { l.max_listed_input_space = 100; },
+       "p.yaml:10:14: the input space passes 100 combinations of input values at 'weight'; a space of at most 16777216 "
+       "inputs is listed, and this coordinator lists at most max_listed_input_space = 100 (larger spaces are split by "
+       "a hash, without a list)"},
+      {"parent space", {}, [](SpecLimits& l) { l.max_parent_space = 30; },
+       "p.yaml:13:14: 'local' reads 36 combinations of its parents' values (origin 6 x dest 6), more than its lookup "
+       "table may hold: this coordinator accepts at most max_parent_space = 30 per mechanism"},
       {"network parameters", {"network.hidden=[64,64,64]"}, [](SpecLimits& l) { l.max_network_parameters = 10000; },
        "network: "},
       {"steps", {"training.steps=5000"}, [](SpecLimits& l) { l.max_steps = 4000; },

@@ -879,6 +879,24 @@ void CheckLimitsBeforeCompiling(Reader& r, const Positions& pos, const JobSpec& 
       space_reported = true;
     }
   }
+  // A listed space (2^24 inputs or fewer) is enumerated while it is validated; a hashed one is not.
+  if (!space_reported && space <= static_cast<long double>(causal::kMaxListedInputSpace) &&
+      space > static_cast<long double>(limits.max_listed_input_space)) {
+    long double listed = 1;
+    for (size_t i = 0; i < spec.variables.size(); ++i) {
+      const VariableDecl& d = spec.variables[i];
+      if (d.role != Role::kInput || !d.domain) continue;
+      listed *= static_cast<long double>(std::max<int64_t>(DeclaredSize(*d.domain), 1));
+      if (listed > static_cast<long double>(limits.max_listed_input_space)) {
+        r.Error(pos.var_domain[i],
+                absl::StrCat("the input space passes ", limits.max_listed_input_space, " combinations of input values at '",
+                             d.name, "'; a space of at most ", causal::kMaxListedInputSpace,
+                             " inputs is listed, and this coordinator lists at most max_listed_input_space = ",
+                             limits.max_listed_input_space, " (larger spaces are split by a hash, without a list)"));
+        break;
+      }
+    }
+  }
   if (spec.training.steps > limits.max_steps) {
     r.Error(pos.steps, absl::StrCat("training.steps: ", spec.training.steps,
                                     " steps; this coordinator accepts at most max_steps = ", limits.max_steps));
@@ -1130,7 +1148,7 @@ void Validate(Reader& r, const Positions& pos, ResolvedJob& job) {
     return;
   }
   job.split = std::move(*split);
-  job.distinct_eval_triples = causal::DistinctTriples(job.split.test.size(), job.sets.size());
+  job.distinct_eval_triples = causal::DistinctTriples(job.split, job.sets.size());
 }
 
 }  // namespace
@@ -1150,6 +1168,8 @@ SpecLimits SpecLimits::None() {
   l.max_domain_values = INT64_MAX;
   l.max_table_entries = INT64_MAX;
   l.max_input_space = INT64_MAX;  // the model itself stops at causal::kMaxInputSpace
+  l.max_parent_space = INT64_MAX;  // the model itself stops at causal::kMaxParentSpace
+  l.max_listed_input_space = INT64_MAX;
   l.max_network_parameters = INT64_MAX;
   l.max_steps = INT64_MAX;
   return l;
@@ -1227,7 +1247,8 @@ absl::StatusOr<ResolvedJob> ResolveTree(const ConfigNode& root, const SpecLimits
   if (!r.ok()) return absl::InvalidArgumentError(Combine(r.errors()));
 
   causal::ModelError me;
-  auto model = causal::CausalModel::Create(spec.variables, &me, limits.max_table_entries, "max_table_entries");
+  auto model = causal::CausalModel::Create(spec.variables, &me, limits.max_table_entries, "max_table_entries",
+                                           limits.max_parent_space, "max_parent_space");
   if (!model.ok()) {
     Location loc = pos.root;
     std::string message = me.message;
@@ -1536,10 +1557,30 @@ std::string Summarize(const ResolvedJob& job) {
   std::vector<std::string> set_names;
   for (const auto& s : job.sets) set_names.push_back(s.name);
   out << "interventions: " << (set_names.empty() ? "none" : absl::StrJoin(set_names, ", ")) << "\n";
-  out << "input space: " << m.input_space_size() << " inputs; held out: " << job.split.test.size()
-      << " (" << spec.evaluation.held_out << "); training: " << job.split.train.size() << "\n";
-  out << "evaluation triples: " << job.distinct_eval_triples << " distinct; ";
-  if (job.distinct_eval_triples <= static_cast<uint64_t>(spec.evaluation.triples)) {
+  const causal::InputSplit& split = job.split;
+  if (!split.hashed) {
+    out << "input space: " << m.input_space_size() << " inputs; held out: " << split.test.size() << " ("
+        << spec.evaluation.held_out << "); training: " << split.train.size() << "\n";
+    out << "split: listed (at most " << causal::kMaxListedInputSpace << " inputs): "
+        << (spec.evaluation.held_out > 0 ? "exactly round(held_out x inputs) held out by a permutation seeded from the seed"
+                                         : "nothing held out; training and evaluation use every input")
+        << "\n";
+  } else {
+    out << "input space: " << m.input_space_size() << " inputs; held out: about "
+        << static_cast<int64_t>(std::llround(split.HeldOutCount())) << " (" << spec.evaluation.held_out
+        << "); training: about " << static_cast<int64_t>(std::llround(split.TrainingCount())) << "\n";
+    out << "split: hashed (more than " << causal::kMaxListedInputSpace << " inputs, none listed): "
+        << (spec.evaluation.held_out > 0
+                ? absl::StrCat("an input is held out when a hash of its number seeded from the seed falls below ",
+                               FormatDouble(spec.evaluation.held_out),
+                               "; training batches draw uniformly and skip held-out inputs, evaluation draws only "
+                               "held-out ones")
+                : std::string("nothing held out; training and evaluation draw uniformly from every input"))
+        << "\n";
+  }
+  out << "evaluation triples: " << job.distinct_eval_triples << (split.hashed ? " distinct (about)" : " distinct")
+      << "; ";
+  if (!split.hashed && job.distinct_eval_triples <= static_cast<uint64_t>(spec.evaluation.triples)) {
     out << "all are evaluated\n";
   } else {
     out << spec.evaluation.triples << " sampled\n";

@@ -13,6 +13,7 @@
 
 #include "absl/status/statusor.h"
 #include "trainer/causal/model.h"
+#include "trainer/causal/split.h"
 #include "configs/reader/config_tree.h"
 
 namespace graft::config {
@@ -143,7 +144,15 @@ struct SpecLimits {
   int64_t max_variables = 256;                 // inputs, mechanisms and the output together
   int64_t max_domain_values = 65536;           // values in one variable's domain (declared or inferred)
   int64_t max_table_entries = int64_t{1} << 22;  // entries of all mechanism lookup tables together
-  int64_t max_input_space = int64_t{1} << 20;  // combinations of input values (the product of the input domains)
+  // Combinations of input values (the product of the input domains). Spaces above 2^24 are split by
+  // a hash and never listed, so they cost validation nothing.
+  int64_t max_input_space = causal::kMaxInputSpace;
+  // The largest listed input space (at most causal::kMaxListedInputSpace): validating a listed split
+  // costs about 10 bytes and 0.2 microseconds per input (2^24: about 180 MB and 3 s).
+  int64_t max_listed_input_space = int64_t{1} << 20;
+  // Joint parent values of one mechanism: the entries of its lookup table (at most
+  // causal::kMaxParentSpace).
+  int64_t max_parent_space = causal::kMaxParentSpace;
   int64_t max_network_parameters = 100000000;  // the network's weights and biases (embeddings included)
   int64_t max_steps = 100000000;               // training.steps, and das.steps
 

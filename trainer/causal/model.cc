@@ -73,8 +73,10 @@ absl::Status Fail(ModelError* error, int variable, ModelError::Part part, int of
 }  // namespace
 
 absl::StatusOr<std::unique_ptr<CausalModel>> CausalModel::Create(
-    const std::vector<VariableDecl>& decls, ModelError* error, int64_t max_table_entries, const std::string& limit_name) {
+    const std::vector<VariableDecl>& decls, ModelError* error, int64_t max_table_entries, const std::string& limit_name,
+    int64_t max_parent_space, const std::string& parent_limit_name) {
   using Part = ModelError::Part;
+  const int64_t parent_cap = std::min(max_parent_space, kMaxParentSpace);
   std::unique_ptr<CausalModel> m(new CausalModel());
   const int n = static_cast<int>(decls.size());
   std::map<std::string, int> index;
@@ -265,10 +267,22 @@ absl::StatusOr<std::unique_ptr<CausalModel>> CausalModel::Create(
     for (int k = static_cast<int>(v.parents.size()) - 1; k >= 0; --k) {
       v.strides[k] = space;
       space *= m->vars_[v.parents[k]].domain.size();
-      if (space > kMaxParentSpace) {
+      if (space > parent_cap) {
+        std::vector<std::string> sizes;
+        long double joint = 1;
+        for (int p : v.parents) {
+          sizes.push_back(absl::StrCat(m->vars_[p].name, " ", m->vars_[p].domain.size()));
+          joint *= m->vars_[p].domain.size();
+        }
+        const bool named = !parent_limit_name.empty() && max_parent_space <= kMaxParentSpace;
         return Fail(error, i, Part::kExpression, 0,
-                    absl::StrCat("'", d.name, "' has more than ", kMaxParentSpace,
-                                 " combinations of parent values; split it into smaller mechanisms"));
+                    absl::StrCat("'", d.name, "' reads ",
+                                 joint < 9e18L ? absl::StrCat(static_cast<int64_t>(joint)) : std::string("over 9e18"),
+                                 " combinations of its parents' values (", absl::StrJoin(sizes, " x "),
+                                 "), more than its lookup table may hold: ",
+                                 named ? absl::StrCat("this coordinator accepts at most ", parent_limit_name, " = ")
+                                       : std::string("graft's cap is "),
+                                 parent_cap, " per mechanism; split it into smaller mechanisms"));
       }
     }
     table_entries += space;
@@ -401,13 +415,14 @@ absl::StatusOr<std::unique_ptr<CausalModel>> CausalModel::Create(
 
   // The input space.
   for (int i : m->inputs_) {
-    m->input_space_ *= m->vars_[i].domain.size();
-    if (m->input_space_ > kMaxInputSpace) {
+    const int64_t size = m->vars_[i].domain.size();
+    if (size > 0 && m->input_space_ > kMaxInputSpace / size) {
       return Fail(error, i, Part::kDomain, 0,
                   absl::StrCat("the input space has more than ", kMaxInputSpace,
                                " combinations (reached at input '", decls[i].name,
                                "'); use fewer or smaller inputs"));
     }
+    m->input_space_ *= size;
   }
   return m;
 }
@@ -466,80 +481,6 @@ std::vector<int32_t> CausalModel::Interchange(const std::vector<int32_t>& base,
   for (int v : set) fixed[v] = true;
   std::vector<int32_t> out(num_variables());
   Evaluate(base.data(), fixed, src.data(), out.data());
-  return out;
-}
-
-absl::StatusOr<InputSplit> SplitInputs(const CausalModel& model, double held_out, uint64_t seed) {
-  const int64_t n = model.input_space_size();
-  InputSplit split;
-  if (held_out <= 0.0) {
-    split.train.resize(n);
-    for (int64_t i = 0; i < n; ++i) split.train[i] = i;
-    split.test = split.train;
-    return split;
-  }
-  const int64_t k = static_cast<int64_t>(std::llround(held_out * static_cast<double>(n)));
-  if (k >= n) {
-    return absl::InvalidArgumentError(absl::StrCat(
-        "held_out ", held_out, " holds out all ", n, " inputs; nothing is left to train on"));
-  }
-  std::vector<int64_t> perm(n);
-  for (int64_t i = 0; i < n; ++i) perm[i] = i;
-  Rng rng(seed, /*stream=*/0x5E11);
-  rng.Shuffle(perm);
-  split.test.assign(perm.begin(), perm.begin() + k);
-  split.train.assign(perm.begin() + k, perm.end());
-  std::sort(split.test.begin(), split.test.end());
-  std::sort(split.train.begin(), split.train.end());
-  // Every value of every input must be seen in training.
-  const auto& inputs = model.inputs();
-  std::vector<std::vector<bool>> seen(inputs.size());
-  for (size_t q = 0; q < inputs.size(); ++q) seen[q].assign(model.variable(inputs[q]).domain.size(), false);
-  std::vector<int32_t> vals(inputs.size());
-  for (int64_t x : split.train) {
-    model.DecodeInput(x, vals.data());
-    for (size_t q = 0; q < inputs.size(); ++q) seen[q][vals[q]] = true;
-  }
-  for (size_t q = 0; q < inputs.size(); ++q) {
-    for (size_t j = 0; j < seen[q].size(); ++j) {
-      if (!seen[q][j]) {
-        return absl::InvalidArgumentError(absl::StrCat(
-            "held_out ", held_out, " removes every training input with ", model.variable(inputs[q]).name,
-            " = ", model.ValueName(inputs[q], static_cast<int>(j)),
-            "; the network could not learn that value: lower held_out"));
-      }
-    }
-  }
-  return split;
-}
-
-uint64_t DistinctTriples(size_t num_inputs, size_t num_sets) {
-  return static_cast<uint64_t>(num_inputs) * num_inputs * num_sets;
-}
-
-std::vector<Triple> MakeTriples(const std::vector<int64_t>& inputs, int num_sets, int64_t count,
-                                uint64_t seed) {
-  std::vector<Triple> out;
-  if (inputs.empty() || num_sets <= 0 || count <= 0) return out;
-  const uint64_t distinct = DistinctTriples(inputs.size(), num_sets);
-  if (distinct <= static_cast<uint64_t>(count)) {
-    out.reserve(distinct);
-    for (int s = 0; s < num_sets; ++s) {
-      for (int64_t b : inputs) {
-        for (int64_t src : inputs) out.push_back(Triple{b, src, s});
-      }
-    }
-    return out;
-  }
-  Rng rng(seed, /*stream=*/0x7819);
-  out.reserve(count);
-  for (int64_t i = 0; i < count; ++i) {
-    Triple t;
-    t.base = inputs[rng.Uniform(inputs.size())];
-    t.source = inputs[rng.Uniform(inputs.size())];
-    t.set = static_cast<int>(rng.Uniform(num_sets));
-    out.push_back(t);
-  }
   return out;
 }
 

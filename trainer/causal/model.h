@@ -18,9 +18,10 @@
 
 namespace graft::causal {
 
-// Largest input space (product of input domain sizes) and largest joint parent domain of one
-// mechanism that a model may have: both are enumerated.
-inline constexpr int64_t kMaxInputSpace = int64_t{1} << 24;
+// Largest input space (product of input domain sizes) a model may have: input numbers stay within
+// int64. Spaces above kMaxListedInputSpace (split.h) are never enumerated.
+inline constexpr int64_t kMaxInputSpace = int64_t{1} << 62;
+// Largest joint parent domain of one mechanism: its lookup table is enumerated.
 inline constexpr int64_t kMaxParentSpace = int64_t{1} << 22;
 
 enum class DomainKind { kSymbols, kRange, kBool, kNumbers };
@@ -76,12 +77,16 @@ class CausalModel {
  public:
   // Builds and compiles the model. On failure returns InvalidArgument and, if `error` is not
   // null, fills it with where the problem is. Variables keep the declaration order.
-  // `max_table_entries` bounds the sum of all mechanisms' lookup tables (each is also at most
-  // kMaxParentSpace); compiling stops at the mechanism that would pass it, before evaluating it,
-  // with a message naming `limit_name` and the limit.
+  // `max_table_entries` bounds the sum of all mechanisms' lookup tables; compiling stops at the
+  // mechanism that would pass it, before evaluating it, with a message naming `limit_name` and the
+  // limit. `max_parent_space` (at most kMaxParentSpace, which also applies when it is larger)
+  // bounds each mechanism's joint parent domain, its table's size; the message names
+  // `parent_limit_name` and the limit (or graft's own cap when the name is empty).
   static absl::StatusOr<std::unique_ptr<CausalModel>> Create(const std::vector<VariableDecl>& decls,
                                                              ModelError* error, int64_t max_table_entries = INT64_MAX,
-                                                             const std::string& limit_name = "");
+                                                             const std::string& limit_name = "",
+                                                             int64_t max_parent_space = kMaxParentSpace,
+                                                             const std::string& parent_limit_name = "");
 
   int num_variables() const { return static_cast<int>(vars_.size()); }
   const Variable& variable(int i) const { return vars_[i]; }
@@ -124,32 +129,6 @@ class CausalModel {
   std::vector<std::vector<bool>> ancestors_;  // ancestors_[v][a]
   int64_t input_space_ = 1;
 };
-
-// The split of the input space into training and held-out inputs (input numbers, ascending).
-struct InputSplit {
-  std::vector<int64_t> train;
-  std::vector<int64_t> test;
-};
-
-// Holds out exactly round(held_out * N) inputs chosen by a permutation seeded from `seed`.
-// held_out == 0: both parts are the whole space. Fails (naming the input and value) when some
-// value of some input would never be seen in training, or when training would be empty.
-absl::StatusOr<InputSplit> SplitInputs(const CausalModel& model, double held_out, uint64_t seed);
-
-// An evaluation triple: base input number, source input number, intervention set index.
-struct Triple {
-  int64_t base = 0;
-  int64_t source = 0;
-  int set = 0;
-};
-
-// Number of distinct triples over `inputs` with `num_sets` sets: |inputs|^2 * num_sets.
-uint64_t DistinctTriples(size_t num_inputs, size_t num_sets);
-
-// The evaluation triples: all distinct ones when there are at most `count`, else `count`
-// drawn uniformly (with replacement) by a generator seeded from `seed`.
-std::vector<Triple> MakeTriples(const std::vector<int64_t>& inputs, int num_sets, int64_t count,
-                                uint64_t seed);
 
 }  // namespace graft::causal
 

@@ -273,7 +273,7 @@ absl::StatusOr<std::string> ScanNetwork(const config::ResolvedJob& job, net::Sit
     const int v = model.Find(site.variable);
     std::vector<config::InterventionSet> sets = {config::InterventionSet{site.variable, {v}}};
     LabelTables labels(model, sets);
-    std::vector<causal::Triple> triples = causal::MakeTriples(job.split.test, 1, sc.pairs, job.spec.seed + a);
+    std::vector<causal::Triple> triples = causal::MakeTriples(job.split, 1, sc.pairs, job.spec.seed + a);
     std::vector<int64_t> b, s;
     for (const auto& t : triples) {
       b.push_back(t.base);
@@ -450,14 +450,13 @@ DasOutcome SearchRotation(const config::ResolvedJob& job, net::SiteNetworkImpl& 
   outcome.rotation = net::Rotation(width);
   torch::optim::Adam opt(outcome.rotation->parameters(), torch::optim::AdamOptions(d.lr));
   causal::Rng rng(job.spec.seed, 0xDA55);
-  const auto& train = job.split.train;
   const int out = model.output();
   double loss_sum = 0;
   int64_t loss_n = 0;
   for (int64_t step = 1; step <= d.steps; ++step) {
     std::vector<int64_t> base(d.batch_size), perm(d.batch_size), z(d.batch_size);
     for (int i = 0; i < d.batch_size; ++i) {
-      base[i] = train[rng.Uniform(train.size())];
+      base[i] = job.split.DrawTraining(rng);
       perm[i] = i;
       z[i] = static_cast<int64_t>(rng.Uniform(num_sets));
     }

@@ -7,6 +7,7 @@
 
 #include "absl/strings/str_cat.h"
 #include "trainer/causal/rng.h"
+#include "trainer/causal/split.h"
 #include "trainer/net/transformer.h"
 
 namespace graft::train {
@@ -117,20 +118,11 @@ net::SiteNetwork CreateNetwork(const config::ResolvedJob& job) {
 EvalInputs CreateEvalInputs(const config::ResolvedJob& job) {
   const int64_t cap = job.spec.evaluation.triples;
   auto to_tensor = [](const std::vector<int64_t>& v) { return torch::tensor(v, torch::kInt64); };
-  auto pick = [&](const std::vector<int64_t>& inputs, uint64_t stream) {
-    if (static_cast<int64_t>(inputs.size()) <= cap) return to_tensor(inputs);
-    std::vector<int64_t> copy = inputs;
-    causal::Rng r(job.spec.seed, stream);
-    r.Shuffle(copy);
-    copy.resize(cap);
-    std::sort(copy.begin(), copy.end());
-    return to_tensor(copy);
-  };
   EvalInputs e;
-  e.train = pick(job.split.train, 0xE1);
-  e.test = pick(job.split.test, 0xE2);
+  e.train = to_tensor(causal::SampleInputs(job.split, /*held_out_side=*/false, cap, job.spec.seed, 0xE1));
+  e.test = to_tensor(causal::SampleInputs(job.split, /*held_out_side=*/true, cap, job.spec.seed, 0xE2));
   std::vector<causal::Triple> triples =
-      causal::MakeTriples(job.split.test, static_cast<int>(job.sets.size()), cap, job.spec.seed);
+      causal::MakeTriples(job.split, static_cast<int>(job.sets.size()), cap, job.spec.seed);
   std::vector<int64_t> b, s, z;
   for (const auto& t : triples) {
     b.push_back(t.base);

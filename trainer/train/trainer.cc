@@ -22,6 +22,7 @@
 #include "absl/strings/str_cat.h"
 #include "nlohmann/json.hpp"
 #include "trainer/causal/rng.h"
+#include "trainer/causal/split.h"
 #include "trainer/eval/wilson.h"
 #include "trainer/net/mlp.h"
 #include "trainer/train/flat_optimizer.h"
@@ -113,40 +114,6 @@ double PeakRssMb() {
   return static_cast<double>(ru.ru_maxrss) / 1024.0;  // Linux reports KiB
 }
 
-// ---------------------------------------------------------------------------------------------
-// The data stream: epochs over the training inputs in a shuffled order.
-
-class BatchStream {
- public:
-  BatchStream(std::vector<int64_t> train, uint64_t seed) : order_(std::move(train)), rng_(seed, 0xDA7A) {
-    rng_.Shuffle(order_);
-  }
-  std::vector<int64_t> Next(int n) {
-    std::vector<int64_t> out;
-    out.reserve(n);
-    while (static_cast<int>(out.size()) < n) {
-      if (pos_ == order_.size()) {
-        rng_.Shuffle(order_);
-        pos_ = 0;
-      }
-      out.push_back(order_[pos_++]);
-    }
-    return out;
-  }
-  causal::Rng& rng() { return rng_; }
-  const std::vector<int64_t>& order() const { return order_; }
-  size_t pos() const { return pos_; }
-  void Restore(std::vector<int64_t> order, size_t pos) {
-    order_ = std::move(order);
-    pos_ = pos;
-  }
-
- private:
-  std::vector<int64_t> order_;
-  size_t pos_ = 0;
-  causal::Rng rng_;
-};
-
 Tensor ToTensor(const std::vector<int64_t>& v) { return torch::tensor(v, torch::kInt64); }
 
 Tensor RngState(const causal::Rng& rng) {
@@ -186,7 +153,7 @@ class Run {
         spec_(job.spec),
         options_(options),
         labels_(*job.model, job.sets),
-        stream_(job.split.train, job.spec.seed),
+        stream_(job.split, job.spec.seed),
         rng_(job.spec.seed, 0x1117),
         masks_(job.sets, AlignmentSites(job), LayerColumns(job)),
         eval_(CreateEvalInputs(job)) {}
@@ -209,7 +176,7 @@ class Run {
   const config::JobSpec& spec_;
   const RunOptions& options_;
   LabelTables labels_;
-  BatchStream stream_;
+  causal::TrainingStream stream_;  // the training inputs: listed epochs or hashed draws
   causal::Rng rng_;  // sets, sources
 
   net::SiteNetwork net_;  // the network of network.type
@@ -268,6 +235,7 @@ std::pair<double, double> Run::Step() {
     for (int i = 0; i < n; ++i) p[i] = produce(i);
   };
   const std::vector<int64_t> batch = stream_.Next(B);
+  if (options_.on_training_inputs) options_.on_training_inputs(batch);
   fill(step_base_, B, [&](int i) { return batch[i]; });
   const Tensor& base_num = step_base_;
   Tensor base_in = labels_.Inputs(base_num);
@@ -291,8 +259,12 @@ std::pair<double, double> Run::Step() {
       source_num = base_num.index_select(0, perm);
       source_in = base_in.index_select(0, perm);
     } else {
-      const auto& train = job_.split.train;
-      fill(step_sources_, B, [&](int) { return train[rng_.Uniform(train.size())]; });
+      const causal::InputSplit& split = job_.split;
+      fill(step_sources_, B, [&](int) { return split.DrawTraining(rng_); });
+      if (options_.on_training_inputs) {
+        const int64_t* p = step_sources_.data_ptr<int64_t>();
+        options_.on_training_inputs(std::vector<int64_t>(p, p + B));
+      }
       source_num = step_sources_;
       source_in = labels_.Inputs(source_num);
       if (t.source_gradients) {

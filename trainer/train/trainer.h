@@ -11,6 +11,7 @@
 #include <functional>
 #include <ostream>
 #include <string>
+#include <vector>
 
 #include "absl/status/statusor.h"
 #include "configs/reader/spec.h"
@@ -41,6 +42,10 @@ struct RunOptions {
   std::function<void(int64_t step)> on_checkpoint;
   // Called after every step (cheap; for progress reports).
   std::function<void(int64_t step)> on_step;
+  // Called with the input numbers each step trains on (the batch's base inputs, then, with
+  // `sources: independent`, its source inputs), before the step uses them. For tests that check
+  // what training sees; unset in production.
+  std::function<void(const std::vector<int64_t>& inputs)> on_training_inputs;
   // > 0: use at most this many threads (torch and BLAS), even if training.threads asks for more.
   // Does not change the spec (a checkpoint made with fewer threads still resumes).
   int max_threads = 0;
