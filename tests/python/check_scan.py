@@ -23,6 +23,12 @@ scan.svg is read with Python's own XML parser (xml.etree.ElementTree), and must 
 scan.tsv must have a header and one row per candidate of every variable, with the same layer,
 kind, units and counts as scan.json.
 
+A transformer's scan.json gives each candidate a "position" (an input's name or readout; units
+are then units of that token's residual stream): the picture has one heat map per variable and
+position, opened by "VAR at POSITION: IIA on changed cases by layer and unit block", each held to
+the rules above over that position's candidates, with the best site outlined only in the heat
+map of its own position; scan.tsv then has a position column, checked too.
+
 Prints one line per variable and "checked N heat maps". Exit codes: 0 all hold, 1 any check
 fails (each is printed), 2 malformed input.
 """
@@ -69,6 +75,27 @@ def panels_of(root, failures):
                 continue
             title = el.find(SVG + "title")
             panels[current].append((el, (title.text or "").strip() if title is not None else ""))
+    return panels
+
+
+def panel_entries(variables):
+    """Heat map title -> {"candidates", "best"}: one per variable, or per variable and position."""
+    panels = {}
+    for name, entry in variables.items():
+        positions = []
+        for c in entry["candidates"]:
+            if "position" in c and c["position"] not in positions:
+                positions.append(c["position"])
+        if not positions:
+            panels[name] = entry
+            continue
+        for p in positions:
+            best = entry["best"] if entry["best"].get("position") == p else {"kind": "elsewhere"}
+            if best["kind"] == "elsewhere" or not any(c["kind"] == "block" for c in entry["candidates"]
+                                                       if c.get("position") == p):
+                best = {"kind": "elsewhere"}
+            panels[f"{name} at {p}"] = {"candidates": [c for c in entry["candidates"] if c.get("position") == p],
+                                        "best": best}
     return panels
 
 
@@ -125,12 +152,13 @@ def check_variable(name, entry, cells, failures):
             if (v1 > v2 and l1 > l2) or (v1 > v2 + 0.01 and l1 >= l2):
                 failures.append(f"{name}: {k1} (IIA {v1:.3f}) is not drawn darker than {k2} (IIA {v2:.3f})")
     best = entry["best"]
-    best_key = (best["layer"], units_text(best["units"]))
+    best_key = (best["layer"], units_text(best["units"])) if "units" in best else ("-", "-")
     if best["kind"] == "block":
         if outlined != [best_key]:
             failures.append(f"{name}: outlined cells {outlined}, expected the best site {best_key}")
     elif outlined:
-        failures.append(f"{name}: the best site is a random subset, yet cells {outlined} are outlined")
+        failures.append(f"{name}: the best site is {'elsewhere' if best['kind'] == 'elsewhere' else 'a random subset'}"
+                        f", yet cells {outlined} are outlined")
     print(f"{name}: {len(cells)} cells ({len(layers)} layers x {columns} blocks), outlined {outlined}, "
           f"best in scan.json layer {best_key[0]} units {best_key[1]}")
 
@@ -140,13 +168,15 @@ def check_table(path, scan, failures):
         lines = [line.rstrip("\n").split("\t") for line in f if line.strip()]
     header = lines[0]
     want = []
+    positioned = any("position" in c for e in scan["variables"].values() for c in e["candidates"])
     for name, entry in scan["variables"].items():
         for c in entry["candidates"]:
-            want.append((name, str(c["layer"]), c["kind"], units_text(c["units"]), str(c["iia"]["n"]),
-                         str(c["iia_changed"]["n"])))
+            want.append((name, str(c["layer"]), c.get("position", ""), c["kind"], units_text(c["units"]),
+                         str(c["iia"]["n"]), str(c["iia_changed"]["n"])))
     col = {h: i for i, h in enumerate(header)}
     try:
-        got = [(r[col["variable"]], r[col["layer"]], r[col["kind"]], r[col["units"]], r[col["n"]], r[col["changed_n"]])
+        got = [(r[col["variable"]], r[col["layer"]], r[col["position"]] if positioned else "", r[col["kind"]],
+                r[col["units"]], r[col["n"]], r[col["changed_n"]])
                for r in lines[1:]]
     except (KeyError, IndexError) as e:
         failures.append(f"scan.tsv: header {header} or a row lacks {e}")
@@ -168,7 +198,7 @@ def main(argv):
         if root.tag != SVG + "svg":
             failures.append(f"scan.svg: root element {root.tag}, expected an svg element in the SVG namespace")
         panels = panels_of(root, failures)
-        variables = scan["variables"]
+        variables = panel_entries(scan["variables"])
         if set(panels) != set(variables):
             failures.append(f"scan.svg: heat maps for {sorted(panels)}, scan.json scans {sorted(variables)}")
         for name in sorted(set(panels) & set(variables)):
