@@ -44,7 +44,7 @@ td.num, th.num { text-align: right; font-variant-numeric: tabular-nums; white-sp
 table.confusion td.num { min-width: 40px; }
 table.confusion td.diagonal { font-weight: bold; outline: 1px solid #222; outline-offset: -1px; }
 .figures { display: flex; flex-wrap: wrap; gap: 8px 20px; align-items: flex-start; }
-svg.chart { display: block; }
+svg.chart { display: block; max-width: 100%; height: auto; }
 svg.chart text { font-family: "DejaVu Sans", Helvetica, Arial, sans-serif; }
 pre { background: #f5f5f5; border: 1px solid #e2e2e2; padding: 8px; font-size: 12px; overflow-x: auto; }
 a { color: #1f5aa6; }
@@ -55,6 +55,8 @@ a { color: #1f5aa6; }
   h2 { break-after: avoid-page; }
   pre { white-space: pre-wrap; }
   a { color: inherit; text-decoration: none; }
+  th.key, td.key { display: none; }
+  td { overflow-wrap: anywhere; }
 }
 @page { size: A4; margin: 14mm; }
 )CSS";
@@ -181,7 +183,7 @@ std::string WeightText(double w) {
 // One row of the final-figures table; `acc` may be a plain number (the unchanged floor).
 void FigureRow(std::ostringstream& s, const std::string& key, const std::string& label, const json* acc) {
   if (!acc) return;
-  s << "<tr data-key=\"" << Escape(key) << "\"><td>" << Escape(label) << "</td><td><code>" << Escape(key)
+  s << "<tr data-key=\"" << Escape(key) << "\"><td>" << Escape(label) << "</td><td class=\"key\"><code>" << Escape(key)
     << "</code></td>";
   if (acc->is_number()) {
     s << "<td class=\"num\" data-field=\"value\">" << Fixed3(acc->get<double>())
@@ -197,7 +199,7 @@ void FigureRow(std::ostringstream& s, const std::string& key, const std::string&
 
 std::string FinalTable(const json& final_row, const std::vector<std::string>& sets) {
   std::ostringstream s;
-  s << "<table class=\"figures-table\" id=\"final-figures\">\n<thead><tr><th>figure</th><th>key</th><th "
+  s << "<table class=\"figures-table\" id=\"final-figures\">\n<thead><tr><th>figure</th><th class=\"key\">key</th><th "
        "class=\"num\">value</th><th class=\"num\">95% low</th><th class=\"num\">95% high</th><th "
        "class=\"num\">correct</th><th class=\"num\">n</th></tr></thead>\n<tbody>\n";
   FigureRow(s, "acc_train", "task accuracy, training inputs", AccuracyAt(final_row, "acc_train"));

@@ -98,11 +98,33 @@ void LegendLine(std::ostringstream& s, int x, int y, const std::string& colour, 
     << "</text>\n";
 }
 
+struct LegendEntry {
+  int colour;
+  int dash;
+  double width;
+  std::string text;
+};
+
+// One row per entry, then one per reference line, from `y` down.
+void Legend(std::ostringstream& s, int y, const std::vector<LegendEntry>& entries,
+            const std::vector<ReferenceLine>& references) {
+  for (const auto& e : entries) {
+    LegendLine(s, kLeft, y, PaletteColour(e.colour), e.dash, e.width, e.text);
+    y += kLegendRow;
+  }
+  for (const auto& ref : references) {
+    LegendLine(s, kLeft, y, ReferenceColour(ref.colour), ref.dash, 1.2, ref.label + " (reference) " + Fixed3(ref.y));
+    y += kLegendRow;
+  }
+}
+
 }  // namespace
 
 const std::string& PaletteColour(int index) {
-  static const std::vector<std::string> kPalette = {"#1f5aa6", "#e07b00", "#5c2d91", "#56a8dc",
-                                                    "#a6464f", "#2b8c7a", "#c9a227", "#333333"};
+  // Checked by tests/python/check_palette.py (every pair apart under simulated colour-vision
+  // deficiencies); keep the list on one line per four colours, which the check reads.
+  static const std::vector<std::string> kPalette = {"#1f5aa6", "#e07b00", "#70508a", "#56a8dc",
+                                                    "#8a5a44", "#5a9e4b", "#4c1a80", "#333333"};
   const int n = static_cast<int>(kPalette.size());
   return kPalette[((index % n) + n) % n];
 }
@@ -227,15 +249,11 @@ std::string RenderLineChart(const LineChart& c) {
       << "\" fill=\"" << ReferenceColour(ref->colour) << "\">" << HtmlEscape(ref->label) << " " << Fixed3(ref->y)
       << "</text>\n";
   }
-  int ly = c.height + 10;
+  std::vector<LegendEntry> entries;
   for (const Series* ser : legend) {
-    LegendLine(s, kLeft, ly, PaletteColour(ser->colour), ser->dash, 2, ser->label + (ser->note.empty() ? "" : "  " + ser->note));
-    ly += kLegendRow;
+    entries.push_back({ser->colour, ser->dash, 2, ser->label + (ser->note.empty() ? "" : "  " + ser->note)});
   }
-  for (const auto& ref : c.references) {
-    LegendLine(s, kLeft, ly, ReferenceColour(ref.colour), ref.dash, 1.2, ref.label + " (reference) " + Fixed3(ref.y));
-    ly += kLegendRow;
-  }
+  Legend(s, c.height + 10, entries, c.references);
   s << "</svg>\n";
   return s.str();
 }
@@ -300,15 +318,9 @@ std::string RenderPointChart(const PointChart& c) {
     }
     s << "</g>\n";
   }
-  int ly = c.height + 10;
-  for (const auto& ser : c.series) {
-    LegendLine(s, kLeft, ly, PaletteColour(ser.colour), ser.dash, 1.5, ser.label);
-    ly += kLegendRow;
-  }
-  for (const auto& ref : c.references) {
-    LegendLine(s, kLeft, ly, ReferenceColour(ref.colour), ref.dash, 1.2, ref.label + " (reference) " + Fixed3(ref.y));
-    ly += kLegendRow;
-  }
+  std::vector<LegendEntry> entries;
+  for (const auto& ser : c.series) entries.push_back({ser.colour, ser.dash, 1.5, ser.label});
+  Legend(s, c.height + 10, entries, c.references);
   s << "</svg>\n";
   return s.str();
 }

@@ -11,10 +11,10 @@
 
 namespace graft::client {
 
-// The report palette: eight colours that differ in lightness as well as hue (blue-orange first,
-// no red-green pair), so neighbours stay apart for the common colour-vision deficiencies and in
-// grey-scale print. Every series also differs from its neighbours by dash pattern, so colour is
-// never the only cue. Index wraps around.
+// The report palette: eight colours, blue and orange first, that differ in lightness as well as
+// hue, so every pair stays apart under simulated protanopia, deuteranopia and tritanopia
+// (tests/python/check_palette.py) and in grey-scale print. Every series also differs from its
+// neighbours by dash pattern, so colour is never the only cue. Index wraps around.
 const std::string& PaletteColour(int index);
 // The stroke-dasharray of dash pattern `index` ("" for solid); wraps around.
 const std::string& DashPattern(int index);

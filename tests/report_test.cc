@@ -115,6 +115,16 @@ TEST(Report, JobAndSweepPagesShowTheStoredFiguresInChromium) {
   }
 }
 
+// The palette against simulated colour-vision deficiencies (tests/python/check_palette.py; the
+// first palette tried failed it: a blue and a purple 6.9 apart under deuteranopia).
+TEST(Report, PaletteStaysApartForColourBlindReaders) {
+  auto checked = RunCommand(std::string(SystemPython()) + " " + SourceDir() + "/tests/python/check_palette.py " +
+                            SourceDir() + "/client/report_plot.cc");
+  std::cout << checked.output;
+  EXPECT_EQ(checked.exit_code, 0) << checked.output;
+  EXPECT_NE(checked.output.find("palette: every pair apart"), std::string::npos) << checked.output;
+}
+
 TEST(Report, BadTargetsGiveClearErrors) {
   ScopedTempDir dir;
   auto no_run = RunCommand(BinaryDir() + "/bin/graft-worker report " + dir.path() + "/nothing --out " + dir.path() +

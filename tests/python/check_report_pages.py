@@ -277,7 +277,14 @@ class Browser:
         shot = self.dev.call("Page.captureScreenshot", {
             "format": "png", "captureBeyondViewport": True,
             "clip": {"x": 0, "y": 0, "width": size["width"], "height": size["height"], "scale": 1}})
+        # Printable: Chromium's print to PDF (A4, the page's own print style) gives a PDF.
+        pdf = base64.b64decode(self.dev.call("Page.printToPDF", {"paperWidth": 8.27, "paperHeight": 11.69,
+                                                                  "preferCSSPageSize": True})["data"])
         requests, problems = [], []
+        if not pdf.startswith(b"%PDF") or pdf.count(b"/Type /Page") + pdf.count(b"/Type/Page") < 1:
+            problems.append(f"printing to PDF gave no page ({len(pdf)} bytes)")
+        self.pdf_pages = pdf.count(b"/Type /Page") + pdf.count(b"/Type/Page") - pdf.count(b"/Type /Pages") - \
+            pdf.count(b"/Type/Pages")
         for e in self.dev.events:
             m, p = e["method"], e.get("params", {})
             if m == "Network.requestWillBeSent":
@@ -624,8 +631,8 @@ def main():
             fail(f"self-test: the tampered page was not flagged (requests {fetched}, proxy {seen}, "
                  f"problems {problems}): these checks cannot fail")
         else:
-            print(f"self-test: the tampered page is flagged (requests {fetched}, proxy saw {seen}, "
-                  f"problems {problems})")
+            print(f"self-test: the tampered page is flagged (requests {fetched}, the proxy saw "
+                  f"{[line for line in seen if 'probe.invalid' in line]}, problems {problems})")
 
         images = []
         for run_dir, page in args.job:
@@ -634,6 +641,7 @@ def main():
             dom = Dom(text)
             check_self_contained(name, dom, page, url, requests, proxy.take(), problems)
             check_job(name, dom, run_dir)
+            print(f"{name}: printed to PDF, {browser.pdf_pages} A4 pages")
             images.append(check_screenshot(name, png))
             if args.screenshot_out and len(images) == 1:
                 with open(args.screenshot_out, "wb") as f:
