@@ -410,8 +410,9 @@ TEST(Limits, ListedSpacesAndEachMechanismTableAreBounded) {
                                           "algorithm.inputs.dest=[north, south, east, west, central]",
                                           "algorithm.inputs.weight=[heavy, oversize]"};
   EXPECT_REFUSED(SubmitText(*lc.cluster, kAlice, parcel, small), INVALID_ARGUMENT,
-                 "parcel.yaml:13:14: 'local' reads 25 combinations of its parents' values (origin 5 x dest 5), more "
-                 "than its lookup table may hold: this coordinator accepts at most max_parent_space = 20 per mechanism");
+                 "parcel.yaml:13:14: mechanism 'local': its lookup table would hold 25 entries, one per combination of "
+                 "its parents' values (origin 5 x dest 5); this coordinator accepts at most max_parent_space = 20 "
+                 "entries per mechanism");
   std::string nine = "name: nine\nalgorithm:\n  inputs:\n";
   for (int i = 1; i <= 9; ++i) nine += "    d" + std::to_string(i) + ": {range: [0, 9]}\n";
   nine += "  mechanisms:\n    left: (d1 + d2) % 10\n  output:\n    tally: {expr: \"(left + d3) % 10\"}\n"

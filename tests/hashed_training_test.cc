@@ -26,46 +26,13 @@ using json = nlohmann::json;
 using ::graft::testing::ReadFile;
 using ::graft::testing::ScopedTempDir;
 
-constexpr char kNineDigits[] = R"(name: nine-digit-tally
-seed: 5
-algorithm:
-  inputs:
-    d1: {range: [0, 9]}
-    d2: {range: [0, 9]}
-    d3: {range: [0, 9]}
-    d4: {range: [0, 9]}
-    d5: {range: [0, 9]}
-    d6: {range: [0, 9]}
-    d7: {range: [0, 9]}
-    d8: {range: [0, 9]}
-    d9: {range: [0, 9]}
-  mechanisms:
-    left: (d1 + d2 + d3) % 10
-    middle: (d4 + d5 + d6) % 10
-    right: (d7 + d8 + d9) % 10
-  output:
-    tally: {expr: "(left + middle + right) % 10"}
-network:
-  type: mlp
-  embedding: {dim: 4}
-  hidden: [32, 32]
-alignment:
-  left: {layer: 0, units: 0-7}
-  middle: {layer: 0, units: 8-15}
-  right: {layer: 0, units: 16-23}
-training:
-  steps: 6
-  batch_size: 64
-  sources: independent
-  checkpoint_every: 3
-evaluation:
-  every: 3
-  held_out: 0.25
-  triples: 512
-)";
+// tests/data/nine-digit-tally.yaml (nine inputs of ten values, 6 steps of 64, evaluations at 0, 3
+// and 6 on 512 triples), with independent sources, so both kinds of training draws are checked.
+std::string NineDigitsText() { return ReadFile(::graft::testing::SourceDir() + "/tests/data/nine-digit-tally.yaml"); }
+const std::vector<std::string> kIndependent = {"training.sources=independent"};
 
-config::ResolvedJob NineDigits() {
-  auto job = config::LoadJobFromText(kNineDigits, "nine.yaml", {});
+config::ResolvedJob NineDigitsJob() {
+  auto job = config::LoadJobFromText(NineDigitsText(), "nine.yaml", kIndependent);
   EXPECT_TRUE(job.ok()) << job.status();
   return std::move(*job);
 }
@@ -87,7 +54,7 @@ std::vector<json> Lines(const std::string& path) {
 // skip), evaluation triples and held-out task inputs taken from training inputs, and evaluation
 // failing or reporting the wrong number of triples on a hashed space.
 TEST(HashedTraining, TrainsAndEvaluatesTenToTheNineInputsWithoutListingThem) {
-  const config::ResolvedJob job = NineDigits();
+  const config::ResolvedJob job = NineDigitsJob();
   ASSERT_EQ(job.model->input_space_size(), 1000000000);
   ASSERT_TRUE(job.split.hashed);
   // The data structure a listed split would be (16 GB of input numbers here) is not built.
@@ -142,7 +109,7 @@ TEST(HashedTraining, TrainsAndEvaluatesTenToTheNineInputsWithoutListingThem) {
 // curve), a checkpoint that loses the hashed stream's state (a resumed run that draws other
 // batches), and a seed that does not change the draws.
 TEST(HashedTraining, TheSameSeedGivesTheSameRunAlsoAfterAResume) {
-  const config::ResolvedJob job = NineDigits();
+  const config::ResolvedJob job = NineDigitsJob();
   ScopedTempDir dir;
   auto run = [&](const std::string& out, int64_t stop, const std::string& resume, const config::ResolvedJob& j) {
     train::RunOptions o;
@@ -159,7 +126,7 @@ TEST(HashedTraining, TheSameSeedGivesTheSameRunAlsoAfterAResume) {
   ASSERT_EQ(a.size(), 3u);
   EXPECT_EQ(a, Lines(dir.path() + "/b/metrics.jsonl"));
   EXPECT_EQ(ReadFile(dir.path() + "/a/weights.pt"), ReadFile(dir.path() + "/b/weights.pt"));
-  auto other = config::LoadJobFromText(kNineDigits, "nine.yaml", {"seed=6"});
+  auto other = config::LoadJobFromText(NineDigitsText(), "nine.yaml", {"training.sources=independent", "seed=6"});
   ASSERT_TRUE(other.ok()) << other.status();
   run(dir.path() + "/c", -1, "", *other);
   EXPECT_NE(ReadFile(dir.path() + "/a/weights.pt"), ReadFile(dir.path() + "/c/weights.pt"));

@@ -195,8 +195,8 @@ TEST(SpecLimits, EachLimitIsRefusedByNameAtItsPlace) {
        "inputs is listed, and this coordinator lists at most max_listed_input_space = 100 (larger spaces are split by "
        "a hash, without a list)"},
       {"parent space", {}, [](SpecLimits& l) { l.max_parent_space = 30; },
-       "p.yaml:13:14: 'local' reads 36 combinations of its parents' values (origin 6 x dest 6), more than its lookup "
-       "table may hold: this coordinator accepts at most max_parent_space = 30 per mechanism"},
+       "p.yaml:13:14: mechanism 'local': its lookup table would hold 36 entries, one per combination of its parents' "
+       "values (origin 6 x dest 6); this coordinator accepts at most max_parent_space = 30 entries per mechanism"},
       {"network parameters", {"network.hidden=[64,64,64]"}, [](SpecLimits& l) { l.max_network_parameters = 10000; },
        "network: "},
       {"steps", {"training.steps=5000"}, [](SpecLimits& l) { l.max_steps = 4000; },

@@ -290,47 +290,14 @@ TEST(HashedSplit, RefusesHeldOutItCannotDrawOrThatMayLoseAValue) {
   EXPECT_TRUE(SplitInputs(*wide, 0.15, 1).ok());
 }
 
-constexpr char kNineDigits[] = R"(name: nine-digit-tally
-seed: 5
-algorithm:
-  inputs:
-    d1: {range: [0, 9]}
-    d2: {range: [0, 9]}
-    d3: {range: [0, 9]}
-    d4: {range: [0, 9]}
-    d5: {range: [0, 9]}
-    d6: {range: [0, 9]}
-    d7: {range: [0, 9]}
-    d8: {range: [0, 9]}
-    d9: {range: [0, 9]}
-  mechanisms:
-    left: (d1 + d2 + d3) % 10
-    middle: (d4 + d5 + d6) % 10
-    right: (d7 + d8 + d9) % 10
-  output:
-    tally: {expr: "(left + middle + right) % 10"}
-network:
-  type: mlp
-  embedding: {dim: 4}
-  hidden: [32, 32]
-alignment:
-  left: {layer: 0, units: 0-7}
-  middle: {layer: 0, units: 8-15}
-  right: {layer: 0, units: 16-23}
-training:
-  steps: 5
-  batch_size: 64
-evaluation:
-  held_out: 0.25
-  triples: 512
-)";
+// tests/data/nine-digit-tally.yaml: nine inputs of ten values (10^9 inputs), held_out 0.25.
+std::string NineDigitsPath() { return ::graft::testing::SourceDir() + "/tests/data/nine-digit-tally.yaml"; }
+std::string NineDigits() { return ::graft::testing::ReadFile(NineDigitsPath()); }
 
 // Catches: `check` (graft-worker's and graft's, one function) not saying how the split is made,
 // or printing counts for a hashed split as if they were exact.
 TEST(HashedSplit, CheckSaysWhichWayTheSplitGoes) {
-  ::graft::testing::ScopedTempDir dir;
-  const std::string path = dir.path() + "/nine.yaml";
-  ::graft::testing::WriteFile(path, kNineDigits);
+  const std::string path = NineDigitsPath();
   auto worker = ::graft::testing::RunCommand(::graft::testing::BinaryDir() + "/bin/graft-worker check " + path);
   ASSERT_EQ(worker.exit_code, 0) << worker.output;
   EXPECT_NE(worker.output.find("input space: 1000000000 inputs; held out: about 250000000 (0.25); training: about "
@@ -356,39 +323,40 @@ TEST(HashedSplit, CheckSaysWhichWayTheSplitGoes) {
 // Catches: a hashed held_out refusal without its place, and a mechanism whose table passes
 // max_parent_space without a message naming the setting at the mechanism's FILE:LINE:COL.
 TEST(HashedSplit, ValidatorNamesThePlaceAndTheLimit) {
-  std::string text = kNineDigits;
+  std::string text = NineDigits();
   text.replace(text.find("held_out: 0.25"), 14, "held_out: 0.0002");
   auto bad = config::LoadJobFromText(text, "nine.yaml", {});
   ASSERT_FALSE(bad.ok());
-  EXPECT_NE(bad.status().message().find("nine.yaml:32:13: evaluation.held_out: held_out 0.0002: the input space has "
+  EXPECT_NE(bad.status().message().find("nine.yaml:36:13: evaluation.held_out: held_out 0.0002: the input space has "
                                         "1000000000 inputs, more than 16777216, so its split is hashed"),
             std::string::npos)
       << bad.status();
-  auto over = config::LoadJobFromText(kNineDigits, "nine.yaml", {"evaluation.held_out=0.9999"});
+  auto over = config::LoadJobFromText(NineDigits(), "nine.yaml", {"evaluation.held_out=0.9999"});
   ASSERT_FALSE(over.ok());
   EXPECT_NE(over.status().message().find("--set #1:1:21: evaluation.held_out: held_out 0.9999"), std::string::npos)
       << over.status();
 
-  auto tree = config::ParseYaml(kNineDigits, "nine.yaml");
+  auto tree = config::ParseYaml(NineDigits(), "nine.yaml");
   ASSERT_TRUE(tree.ok()) << tree.status();
   config::SpecLimits limits;
   limits.max_parent_space = 999;
   auto limited = config::ResolveTree(*tree, limits);
   ASSERT_FALSE(limited.ok());
   EXPECT_NE(limited.status().message().find(
-                "nine.yaml:15:11: 'left' reads 1000 combinations of its parents' values (d1 10 x d2 10 x d3 10), more "
-                "than its lookup table may hold: this coordinator accepts at most max_parent_space = 999 per "
-                "mechanism; split it into smaller mechanisms"),
+                "nine.yaml:17:11: mechanism 'left': its lookup table would hold 1000 entries, one per combination of "
+                "its parents' values (d1 10 x d2 10 x d3 10); this coordinator accepts at most max_parent_space = 999 "
+                "entries per mechanism; split it into smaller mechanisms"),
             std::string::npos)
       << limited.status();
   // Without graftd's settings, graft's own cap is named.
-  std::string wide = kNineDigits;
+  std::string wide = NineDigits();
   wide.replace(wide.find("left: (d1 + d2 + d3) % 10"), 25, "left: (d1 + d2 + d3 + d4 + d5 + d6 + d7) % 10");
   auto capped = config::LoadJobFromText(wide, "nine.yaml", {});
   ASSERT_FALSE(capped.ok());
-  EXPECT_NE(capped.status().message().find("nine.yaml:15:11: 'left' reads 10000000 combinations of its parents' values "
-                                           "(d1 10 x d2 10 x d3 10 x d4 10 x d5 10 x d6 10 x d7 10), more than its "
-                                           "lookup table may hold: graft's cap is 4194304 per mechanism"),
+  EXPECT_NE(capped.status().message().find("nine.yaml:17:11: mechanism 'left': its lookup table would hold 10000000 "
+                                           "entries, one per combination of its parents' values (d1 10 x d2 10 x d3 10 "
+                                           "x d4 10 x d5 10 x d6 10 x d7 10); graft's cap is 4194304 entries per "
+                                           "mechanism"),
             std::string::npos)
       << capped.status();
   // The default limits (graftd's) accept the 10^9-input config: nothing is listed.

@@ -276,13 +276,13 @@ absl::StatusOr<std::unique_ptr<CausalModel>> CausalModel::Create(
         }
         const bool named = !parent_limit_name.empty() && max_parent_space <= kMaxParentSpace;
         return Fail(error, i, Part::kExpression, 0,
-                    absl::StrCat("'", d.name, "' reads ",
+                    absl::StrCat("its lookup table would hold ",
                                  joint < 9e18L ? absl::StrCat(static_cast<int64_t>(joint)) : std::string("over 9e18"),
-                                 " combinations of its parents' values (", absl::StrJoin(sizes, " x "),
-                                 "), more than its lookup table may hold: ",
+                                 " entries, one per combination of its parents' values (", absl::StrJoin(sizes, " x "),
+                                 "); ",
                                  named ? absl::StrCat("this coordinator accepts at most ", parent_limit_name, " = ")
                                        : std::string("graft's cap is "),
-                                 parent_cap, " per mechanism; split it into smaller mechanisms"));
+                                 parent_cap, " entries per mechanism; split it into smaller mechanisms"));
       }
     }
     table_entries += space;
