@@ -4,11 +4,13 @@
 # loopback with a fresh data dir and generated tokens, starts two workers, submits a
 # parcel-routing sweep (interchange weight 0 and 1, two seeds each), watches it to the end,
 # prints `graft compare`, fetches every job's artifacts, and stops every process it started,
-# also when interrupted. Usage: scripts/demo.sh [OUT_DIR]   (default: var/demo)
+# also when interrupted. Usage: scripts/demo.sh [OUT_DIR] [SWEEP_CONFIG]   (defaults: var/demo,
+# configs/parcel-routing-sweep.yaml; configs/ferry-boarding-sweep.yaml is the transformer demo)
 set -euo pipefail
 cd "$(dirname "$0")/.."
 root="$(pwd)"
 out="${1:-var/demo}"
+sweep_config="${2:-configs/parcel-routing-sweep.yaml}"
 
 bash scripts/setup.sh
 # Only the programs the demo runs: on a fresh machine the tests and benchmarks would take most of
@@ -58,13 +60,13 @@ for n in 1 2; do
   pids+=($!)
 done
 
-echo "== submitting the sweep (configs/parcel-routing-sweep.yaml)"
-sweep="$(build/bin/graft submit configs/parcel-routing-sweep.yaml --json | /usr/bin/python3 -c 'import json,sys; print(json.load(sys.stdin)["sweep_id"])')"
+echo "== submitting the sweep ($sweep_config)"
+sweep="$(build/bin/graft submit "$sweep_config" --json | /usr/bin/python3 -c 'import json,sys; print(json.load(sys.stdin)["sweep_id"])')"
 echo "   sweep $sweep"
 echo "== watching $sweep"
 build/bin/graft watch "$sweep" || true
 echo
-build/bin/graft wait "$sweep" --timeout 600
+build/bin/graft wait "$sweep" --timeout 1800
 echo "== graft compare $sweep"
 build/bin/graft compare "$sweep"
 echo

@@ -1,6 +1,7 @@
 // The config language for transformers: the network block, sites at token positions, the
 // generalised validity rule, scan and DAS positions. Each refusal names FILE:LINE:COL and the
 // key; valid configs resolve and round-trip.
+#include <algorithm>
 #include <string>
 #include <vector>
 
@@ -124,6 +125,26 @@ TEST(TransformerSpec, ParameterCountByHand) {
                 "4980; use a narrower width or mlp_width, or fewer layers"),
             std::string::npos)
       << refused.status();
+}
+
+// The shipped transformer demo: over 10^8 inputs (split by a hash, never listed), three
+// intermediate variables at three different tokens; its sweep file holds the same job.
+TEST(TransformerSpec, ShippedFerryBoardingDemoChecks) {
+  auto job = LoadJob(::graft::testing::SourceDir() + "/configs/ferry-boarding.yaml", {});
+  ASSERT_OK(job);
+  EXPECT_TRUE(job->spec.network.is_transformer());
+  EXPECT_GE(job->model->input_space_size(), 100000000);
+  EXPECT_TRUE(job->split.hashed);
+  ASSERT_EQ(job->spec.alignment.size(), 3u);
+  std::vector<std::string> positions;
+  for (const auto& site : job->spec.alignment) {
+    ASSERT_EQ(site.positions.size(), 1u);
+    EXPECT_EQ(std::count(positions.begin(), positions.end(), site.positions[0]), 0) << site.positions[0];
+    positions.push_back(site.positions[0]);
+  }
+  auto swept = LoadJob(::graft::testing::SourceDir() + "/configs/ferry-boarding-sweep.yaml", {"sweep=null"});
+  ASSERT_OK(swept);
+  EXPECT_EQ(ResolvedSpecYaml(swept->spec), ResolvedSpecYaml(job->spec));
 }
 
 TEST(TransformerSpecErrors, NetworkBlock) {
