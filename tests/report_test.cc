@@ -162,6 +162,21 @@ TEST(PythonPackage, RebuildsTheNetworkAgreesWithGraftAndDrivesGraftd) {
   EXPECT_NE(checked.output.find(" checks passed, 0 failed"), std::string::npos) << checked.output;
 }
 
+// graft.Client over mutual TLS, with the certificates of scripts/make-certs.sh.
+TEST(PythonPackage, ClientSpeaksMutualTls) {
+  ScopedTempDir dir;
+  const std::string certs = testing::MakeCerts(dir.path() + "/certs");
+  testing::ClusterTls tls{certs, true};
+  Cluster c(30, {}, tls);
+  auto checked = RunCommand(std::string(SystemPython()) + " " + SourceDir() + "/tests/python/check_graft_package.py" +
+                            " --package-dir " + BinaryDir() + "/python --work " + dir.path() + " --token " + kAlice +
+                            " --config " + SourceDir() + "/configs/parcel-routing.yaml --tls-address " + c.address() +
+                            " --ca-file " + tls.ca() + " --cert " + tls.client_cert() + " --key " + tls.client_key());
+  std::cout << checked.output;
+  EXPECT_EQ(checked.exit_code, 0) << checked.output;
+  EXPECT_NE(checked.output.find(" checks passed, 0 failed"), std::string::npos) << checked.output;
+}
+
 // The transformer kind: a tiny one, aligned at token positions, rebuilt from weights.pt.
 TEST(PythonPackage, RebuildsAGraftTransformer) {
   ScopedTempDir dir;

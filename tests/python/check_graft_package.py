@@ -2,8 +2,9 @@
 """Checks the graft Python package (client/python/graft, assembled in build/python) against graft's
 own files and a real graftd.
 
-usage: check_graft_package.py --package-dir BUILD/python --run-dir DIR
+usage: check_graft_package.py --package-dir BUILD/python [--run-dir DIR]
                               [--address HOST:PORT --token TOKEN --config FILE [--set k=v ...]]
+                              [--tls-address HOST:PORT --ca-file CA --cert PEM --key KEY]
 
 DIR is a run of `graft-worker run ... --set evaluation.triples=64 --dump-logits DIR/logits.json`
 (an MLP or a transformer), so logits.json holds every held-out evaluation triple with graft's base
@@ -24,7 +25,9 @@ Checks, with references outside the package:
     in step order, the last event the job succeeded), get, list, metrics (the watched points,
     step for step) and fetch (each file's SHA-256 equal to what graftd reports, and load_run of
     the fetched directory giving the stored metrics), a GraftError NOT_FOUND for an unknown job,
-    UNAUTHENTICATED for a wrong token and INVALID_ARGUMENT with FILE:LINE:COL for a bad config.
+    UNAUTHENTICATED for a wrong token and INVALID_ARGUMENT with FILE:LINE:COL for a bad config;
+  - with --tls-address (graftd with mutual TLS): a client with ca_file, cert_file and key_file
+    submits and reads a job; one without its certificate and one in plaintext are refused.
 Prints each check; exit 0 when all pass, 1 otherwise (a missing module is a failure).
 """
 
@@ -226,17 +229,39 @@ def check_client(graft, args):
     client.close()
 
 
+def check_tls(graft, args):
+    """graftd with mutual TLS: the client with ca_file, cert_file and key_file submits and reads a
+    job; without its certificate, or without TLS, it is refused (UNAVAILABLE, as gRPC reports a
+    failed handshake)."""
+    with graft.Client(args.tls_address, token=args.token, ca_file=args.ca_file, cert_file=args.cert,
+                      key_file=args.key) as client:
+        job_id = client.submit(args.config, overrides=args.set)["job_id"]
+        check(client.get(job_id)["state"] in ("queued", "running"), f"TLS: submitted {job_id} and read it back")
+    for label, kwargs in [("without a client certificate", {"ca_file": args.ca_file}),
+                          ("in plaintext", {"ca_file": ""})]:
+        try:
+            with graft.Client(args.tls_address, token=args.token, timeout=10, **kwargs) as client:
+                client.get(job_id)
+            check(False, f"TLS: a client {label} is refused")
+        except graft.GraftError as e:
+            check(e.code == "UNAVAILABLE", f"TLS: a client {label} is refused ({e.code})")
+
+
 def main():
     ap = argparse.ArgumentParser()
     ap.add_argument("--package-dir", required=True)
-    ap.add_argument("--run-dir", required=True)
+    ap.add_argument("--run-dir")
     ap.add_argument("--work", default=None)
     ap.add_argument("--address")
     ap.add_argument("--token")
     ap.add_argument("--config")
     ap.add_argument("--set", action="append", default=[])
+    ap.add_argument("--tls-address", help="a graftd serving mutual TLS (with --ca-file, --cert, --key)")
+    ap.add_argument("--ca-file")
+    ap.add_argument("--cert")
+    ap.add_argument("--key")
     args = ap.parse_args()
-    args.work = args.work or args.run_dir
+    args.work = args.work or args.run_dir or "."
     sys.path.insert(0, args.package_dir)
     try:
         import torch
@@ -249,9 +274,12 @@ def main():
         return 1
     check(os.path.dirname(graft.__file__) == os.path.join(os.path.abspath(args.package_dir), "graft"),
           f"graft imported from {os.path.dirname(graft.__file__)}")
-    check_run(graft, torch, args.run_dir)
+    if args.run_dir:
+        check_run(graft, torch, args.run_dir)
     if args.address:
         check_client(graft, args)
+    if args.tls_address:
+        check_tls(graft, args)
     print(f"graft package: {checks['passed']} checks passed, {checks['failed']} failed")
     return 0 if checks["failed"] == 0 else 1
 

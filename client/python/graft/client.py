@@ -91,7 +91,7 @@ class Client:
             raise ValueError("graft.Client: no token (pass token= or set GRAFT_TOKEN)")
         self._metadata = (("authorization", "Bearer " + token),)
         self._timeout = timeout
-        ca_file = ca_file if ca_file is not None else os.environ.get("GRAFT_CA_FILE")
+        ca_file = ca_file if ca_file is not None else os.environ.get("GRAFT_CA_FILE")  # "": plaintext
         if ca_file:
             def read(path):
                 with open(path, "rb") as f:
