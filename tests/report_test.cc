@@ -160,6 +160,11 @@ TEST(PythonPackage, RebuildsTheNetworkAgreesWithGraftAndDrivesGraftd) {
   std::cout << checked.output;
   EXPECT_EQ(checked.exit_code, 0) << checked.output;
   EXPECT_NE(checked.output.find(" checks passed, 0 failed"), std::string::npos) << checked.output;
+  // The example beside the package still runs on today's API (on the same run).
+  auto example = RunCommand("PYTHONPATH=" + BinaryDir() + "/python " + std::string(SystemPython()) + " " + SourceDir() +
+                            "/client/python/example_notebook.py " + run);
+  EXPECT_EQ(example.exit_code, 0) << example.output;
+  EXPECT_NE(example.output.find("failing triples re-run: 0 correct"), std::string::npos) << example.output;
 }
 
 // graft.Client over mutual TLS, with the certificates of scripts/make-certs.sh.
