@@ -246,13 +246,17 @@ class Browser:
         if port is None:
             self.close()
             raise RuntimeError(f"chromium did not start (see {self.log.name})")
-        targets = json.loads(self._http(port, "/json/list"))
-        page = next(t for t in targets if t["type"] == "page")
-        self.dev = DevTools(WebSocket(page["webSocketDebuggerUrl"], PAGE_LOAD_S))
-        for domain in ("Page", "Network", "Runtime", "Log"):
-            self.dev.call(domain + ".enable")
-        self.dev.call("Emulation.setDeviceMetricsOverride",
-                      {"width": 1100, "height": 900, "deviceScaleFactor": 1, "mobile": False})
+        try:
+            targets = json.loads(self._http(port, "/json/list"))
+            page = next(t for t in targets if t["type"] == "page")
+            self.dev = DevTools(WebSocket(page["webSocketDebuggerUrl"], PAGE_LOAD_S))
+            for domain in ("Page", "Network", "Runtime", "Log"):
+                self.dev.call(domain + ".enable")
+            self.dev.call("Emulation.setDeviceMetricsOverride",
+                          {"width": 1100, "height": 900, "deviceScaleFactor": 1, "mobile": False})
+        except Exception:
+            self.close()  # never leave a browser behind
+            raise
 
     @staticmethod
     def _http(port, path):
