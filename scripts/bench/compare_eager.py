@@ -180,6 +180,15 @@ def main():
               f" {med_range(loop_ratios):22}")
     print("(ratio: per round, eager process wall / graft process wall. loop-only ratio: eager's"
           " training-loop seconds (incl. evaluations) / graft's result.json 'seconds')")
+    print()
+    print("## graft's time outside the training steps, as a share of the whole process: median [min-max]")
+    for name, _ in GRAFT_VARIANTS:
+        # result.json wall_s - train_steps_s: every evaluation (the shipped cadence), checkpoints,
+        # the final controls and the artifacts; an upper bound on what evaluation costs.
+        outside = [(res["wall_s"] - res["train_steps_s"]) / w for res, w in zip(results[name], walls[name])]
+        steps = [res["train_steps_s"] / w for res, w in zip(results[name], walls[name])]
+        print(f"{name:40} outside the steps {med_range([100 * x for x in outside], '{:.1f}%')};"
+              f" training steps {med_range([100 * x for x in steps], '{:.1f}%')}; the rest is process start-up")
 
     print()
     print("## BLAS and threads")

@@ -2,6 +2,8 @@
 
 #include <cmath>
 
+#include <ATen/Parallel.h>
+
 namespace graft::train {
 
 FlatOptimizer::FlatOptimizer(const std::vector<torch::Tensor>& params, const FlatOptimizerOptions& options)
@@ -27,29 +29,49 @@ FlatOptimizer::FlatOptimizer(const std::vector<torch::Tensor>& params, const Fla
 void FlatOptimizer::ZeroGrad() { grads_.zero_(); }
 
 void FlatOptimizer::Step() {
-  torch::NoGradGuard no_grad;
+  // One fused sweep over the flat buffers (split across torch's intra-op threads) instead of a
+  // tensor operation per term: each entry's update is torch's formula, element by element.
   ++step_;
-  torch::Tensor g = grads_;
-  if (options_.weight_decay != 0) g = g.add(params_, options_.weight_decay);
+  float* p = params_.data_ptr<float>();
+  const float* g = grads_.data_ptr<float>();
+  float* m = m_.data_ptr<float>();
+  const float wd = static_cast<float>(options_.weight_decay);
+  const int64_t n = params_.numel();
+  constexpr int64_t kGrain = 1 << 15;
   if (options_.adam) {
+    float* v = v_.data_ptr<float>();
     const double b1 = options_.beta1, b2 = options_.beta2;
-    m_.mul_(b1).add_(g, 1 - b1);
-    v_.mul_(b2).addcmul_(g, g, 1 - b2);
+    const float fb1 = static_cast<float>(b1), fb2 = static_cast<float>(b2);
+    const float one_minus_b1 = static_cast<float>(1 - b1), one_minus_b2 = static_cast<float>(1 - b2);
     const double bias1 = 1 - std::pow(b1, static_cast<double>(step_));
     const double bias2 = 1 - std::pow(b2, static_cast<double>(step_));
-    torch::Tensor denom = (v_.sqrt() / std::sqrt(bias2)).add_(options_.eps);
-    params_.addcdiv_(m_, denom, -options_.lr / bias1);
-  } else {
-    if (options_.momentum != 0) {
-      if (step_ == 1) {
-        m_.copy_(g);
-      } else {
-        m_.mul_(options_.momentum).add_(g);
+    const float inv_sqrt_bias2 = static_cast<float>(1 / std::sqrt(bias2));
+    const float eps = static_cast<float>(options_.eps);
+    const float step_size = static_cast<float>(options_.lr / bias1);
+    at::parallel_for(0, n, kGrain, [&](int64_t begin, int64_t end) {
+      for (int64_t i = begin; i < end; ++i) {
+        const float gi = wd != 0.0f ? g[i] + wd * p[i] : g[i];
+        m[i] = m[i] * fb1 + one_minus_b1 * gi;
+        v[i] = v[i] * fb2 + one_minus_b2 * gi * gi;
+        const float denom = std::sqrt(v[i]) * inv_sqrt_bias2 + eps;
+        p[i] -= step_size * (m[i] / denom);
       }
-      params_.add_(m_, -options_.lr);
-    } else {
-      params_.add_(g, -options_.lr);
-    }
+    });
+  } else {
+    const float lr = static_cast<float>(options_.lr);
+    const float momentum = static_cast<float>(options_.momentum);
+    const bool first = step_ == 1;
+    at::parallel_for(0, n, kGrain, [&](int64_t begin, int64_t end) {
+      for (int64_t i = begin; i < end; ++i) {
+        const float gi = wd != 0.0f ? g[i] + wd * p[i] : g[i];
+        if (momentum != 0.0f) {
+          m[i] = first ? gi : m[i] * momentum + gi;
+          p[i] -= lr * m[i];
+        } else {
+          p[i] -= lr * gi;
+        }
+      }
+    });
   }
 }
 

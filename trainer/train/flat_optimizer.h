@@ -1,7 +1,8 @@
 // Adam and SGD (with momentum) over one flat buffer: every trainable parameter becomes a view
 // into a single contiguous tensor and its gradient a view into another, so zeroing the
-// gradients and an optimiser step are a handful of tensor operations instead of several per
-// parameter. The arithmetic is torch.optim.Adam's / torch.optim.SGD's (no amsgrad, no
+// gradients is one operation and an optimiser step one fused sweep over the buffers (split
+// across torch's intra-op threads) instead of several tensor operations per parameter. The
+// arithmetic is torch.optim.Adam's / torch.optim.SGD's (no amsgrad, no
 // dampening, no Nesterov), which tests check against LibTorch's own optimisers.
 // Includes torch: trainer sources only. Thread-safety: none (one training loop).
 #ifndef GRAFT_TRAINER_TRAIN_FLAT_OPTIMIZER_H_

@@ -9,6 +9,7 @@
 #include <chrono>
 #include <cmath>
 #include <cstdio>
+#include <cstdlib>
 #include <filesystem>
 #include <fstream>
 #include <iomanip>
@@ -26,6 +27,7 @@
 #include "trainer/eval/wilson.h"
 #include "trainer/net/mlp.h"
 #include "trainer/train/flat_optimizer.h"
+#include "trainer/train/kernel_step.h"
 #include "trainer/train/evaluation.h"
 
 #ifndef GRAFT_VERSION
@@ -164,6 +166,8 @@ class Run {
   void BuildNetwork();
   // One optimiser step; returns the two loss values.
   std::pair<double, double> Step();
+  // The same step by the hand-written kernel (kernel_step.h), from the same draws.
+  std::pair<double, double> StepByKernel();
   json Evaluate(int64_t step);
   absl::Status SaveCheckpoint(int64_t step);
   absl::Status LoadCheckpoint(const fs::path& path, int64_t* step);
@@ -181,6 +185,8 @@ class Run {
 
   net::SiteNetwork net_;  // the network of network.type
   std::unique_ptr<FlatOptimizer> optimizer_;
+  std::unique_ptr<KernelStep> kernel_;  // null: the LibTorch step (the reference) runs
+  std::vector<int64_t> kernel_sets_, kernel_perm_, kernel_sources_;
   // Pre-allocated per-step index tensors (filled in place each step) and, for a small input
   // space, every input's embedding rows [N, num_inputs] (value index + row offset).
   Tensor step_base_, step_sets_, step_perm_, step_sources_;
@@ -224,9 +230,15 @@ void Run::BuildNetwork() {
   if (n <= (int64_t{1} << 20)) {
     all_rows_ = labels_.Inputs(torch::arange(n, torch::kInt64)) + net_->offsets();
   }
+  // The hand-written step wherever it covers the network; GRAFT_REFERENCE_STEP=1 keeps LibTorch's.
+  const char* reference = std::getenv("GRAFT_REFERENCE_STEP");
+  if (reference == nullptr || std::string(reference) != "1") {
+    kernel_ = KernelStep::Create(job_, *net_, labels_, *optimizer_);
+  }
 }
 
 std::pair<double, double> Run::Step() {
+  if (kernel_ != nullptr) return StepByKernel();
   const config::TrainingSpec& t = spec_.training;
   const int B = t.batch_size;
   auto fill = [](Tensor& dst, int n, const auto& produce) {
@@ -296,6 +308,29 @@ std::pair<double, double> Run::Step() {
   loss.backward();
   optimizer_->Step();
   return {task_value, iit_value};
+}
+
+// The draws of Step(), in the same order, so both paths train on the same batches and pairs.
+std::pair<double, double> Run::StepByKernel() {
+  const config::TrainingSpec& t = spec_.training;
+  const int B = t.batch_size;
+  const std::vector<int64_t> batch = stream_.Next(B);
+  if (options_.on_training_inputs) options_.on_training_inputs(batch);
+  kernel_sets_.clear();
+  kernel_perm_.clear();
+  kernel_sources_.clear();
+  if (t.interchange_weight > 0 && masks_.lowest_layer() >= 0) {
+    const int num_sets = static_cast<int>(job_.sets.size());
+    for (int i = 0; i < B; ++i) kernel_sets_.push_back(static_cast<int64_t>(rng_.Uniform(num_sets)));
+    if (t.sources == config::SourceMode::kInBatch) {
+      for (int i = 0; i < B; ++i) kernel_perm_.push_back(i);
+      rng_.Shuffle(kernel_perm_);
+    } else {
+      for (int i = 0; i < B; ++i) kernel_sources_.push_back(job_.split.DrawTraining(rng_));
+      if (options_.on_training_inputs) options_.on_training_inputs(kernel_sources_);
+    }
+  }
+  return kernel_->Step(batch, kernel_sets_, kernel_perm_, kernel_sources_);
 }
 
 json Run::Evaluate(int64_t step) {
@@ -495,6 +530,7 @@ json Run::Provenance() const {
   p["blas_threads"] = get ? get() : -1;
   p["torch_threads"] = torch::get_num_threads();
   p["threads"] = threads_;
+  p["training_step"] = kernel_ != nullptr ? "kernel" : "reference";
   p["cpu_model"] = CpuModel();
   p["spec_hash"] = config::SpecHash(spec_);
   return p;
