@@ -114,6 +114,22 @@ TEST(Transformer, StackedForwardEqualsSeparateBaseAndIntervenedRuns) {
   EXPECT_TRUE(torch::allclose(stacked.narrow(0, 48, 48), net->Intervened(hb, hs, masks), 1e-5, 1e-6));
 }
 
+// Catches evaluation's row slices (a batch above 1024 rows without autograd runs in slices)
+// dropping, repeating or reordering rows: the sliced result equals the one-batch result.
+TEST(Transformer, SlicedInferenceEqualsOneBatch) {
+  net::Transformer net = SmallTransformer();
+  torch::Tensor x = RandomInputs(2500);
+  torch::Tensor whole;
+  {
+    torch::AutoGradMode grad(true);  // one batch: autograd on
+    whole = net->Layer(1, net->Layer(0, net->Embed(x))).detach();
+  }
+  torch::NoGradGuard no_grad;
+  torch::Tensor sliced = net->Layer(1, net->Layer(0, net->Embed(x)));
+  ASSERT_EQ(sliced.sizes(), whole.sizes());
+  EXPECT_TRUE(torch::allclose(sliced, whole, 1e-5, 1e-6)) << (sliced - whole).abs().max();
+}
+
 // A small invented task: two digit sums at two tokens. Line numbers do not matter here.
 const char kLedger[] = R"(name: ledger-check
 seed: 5

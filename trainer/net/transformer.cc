@@ -84,6 +84,22 @@ torch::Tensor TransformerImpl::BlockMlp(Block& b, const torch::Tensor& x) {
 }
 
 torch::Tensor TransformerImpl::Layer(int k, const torch::Tensor& below) {
+  const int64_t batch = below.size(0);
+  // Without autograd (evaluation) the rows are independent, so a large batch runs in slices:
+  // the block's [rows, tokens, mlp_width] intermediates stay small (a 9-input job at width 128
+  // evaluates 8192 triples at a time).
+  constexpr int64_t kInferenceRows = 1024;
+  if (!torch::GradMode::is_enabled() && batch > kInferenceRows) {
+    std::vector<torch::Tensor> parts;
+    for (int64_t at = 0; at < batch; at += kInferenceRows) {
+      parts.push_back(RunBlock(k, below.narrow(0, at, std::min(kInferenceRows, batch - at))));
+    }
+    return torch::cat(parts);
+  }
+  return RunBlock(k, below);
+}
+
+torch::Tensor TransformerImpl::RunBlock(int k, const torch::Tensor& below) {
   Block& b = blocks_[k];
   const int64_t batch = below.size(0);
   torch::Tensor x = below.reshape({batch, tokens(), options_.width});

@@ -62,6 +62,8 @@ class TransformerImpl : public SiteNetworkImpl {
     torch::nn::Linear out_proj{nullptr}, fc{nullptr}, proj{nullptr};
   };
   torch::Tensor FromEmbeddings(const torch::Tensor& e, int64_t batch);
+  // Block k on the flattened stream `below` [B, T * width], all rows at once.
+  torch::Tensor RunBlock(int k, const torch::Tensor& below);
   // Attention over `normed` [B, T, width] (LN1 of the stream): every token queries, or only
   // the readout token (the last).
   torch::Tensor Attention(Block& b, const torch::Tensor& normed, bool readout_only);
