@@ -181,14 +181,14 @@ std::string ScanSvg(const std::vector<std::string>& variables, const std::vector
   const int cell = 36, left = 70, top = 40, panel_gap = 50;
   int width = 420, y = 10;
   std::ostringstream body;
+  std::vector<std::pair<size_t, std::string>> panels;  // (variable, position) in candidate order
   for (size_t v = 0; v < variables.size(); ++v) {
-   std::vector<std::string> positions;
-   for (const auto& c : all[v]) {
-     if (!c.random && std::find(positions.begin(), positions.end(), c.position) == positions.end()) {
-       positions.push_back(c.position);
-     }
-   }
-   for (const std::string& position : positions) {
+    for (const auto& c : all[v]) {
+      const std::pair<size_t, std::string> panel{v, c.position};
+      if (!c.random && std::find(panels.begin(), panels.end(), panel) == panels.end()) panels.push_back(panel);
+    }
+  }
+  for (const auto& [v, position] : panels) {
     std::vector<int> layers;
     int columns = 0;
     for (const auto& c : all[v]) {
@@ -227,7 +227,6 @@ std::string ScanSvg(const std::vector<std::string>& variables, const std::vector
     body << "<text x=\"" << left << "\" y=\"" << y0 + layers.size() * cell + 30
          << "\" font-size=\"11\">unit block (block i starts at unit i x stride); red outline: best site</text>\n";
     y = y0 + static_cast<int>(layers.size()) * cell + panel_gap;
-   }
   }
   std::ostringstream svg;
   svg << "<svg xmlns=\"http://www.w3.org/2000/svg\" width=\"" << width << "\" height=\"" << y
