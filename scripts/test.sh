@@ -1,6 +1,6 @@
 #!/usr/bin/env bash
-# Installs what graft needs, builds it with warnings as errors, runs every test, then runs each
-# fuzz target for a bounded time (scripts/fuzz.sh).
+# Installs what graft needs, builds it with warnings as errors, runs every test, runs each fuzz
+# target for a bounded time (scripts/fuzz.sh), then graftd's tests again under AddressSanitizer.
 # Usage: scripts/test.sh [--sanitize address|thread] [ctest arguments...]   (e.g. scripts/test.sh -R Spec)
 # --sanitize builds the whole tree with that sanitizer into its own folder (build-address or
 # build-thread) and runs the tests there, with the suppressions of tests/sanitizer/.
@@ -34,4 +34,16 @@ cd ..
 # run is about the tests above.
 if [[ -z "$sanitize" ]]; then
   bash scripts/fuzz.sh "${GRAFT_FUZZ_SECONDS:-40}"
+fi
+# graftd and the coordinator's tests (server_test) once more with AddressSanitizer and
+# LeakSanitizer, in build-address-server, starting the normal build's graft-worker: the service
+# code that takes hostile input and faults, within CI's time (the whole tree under a sanitizer is
+# --sanitize). Not when ctest arguments were given (a partial run) or with --sanitize.
+if [[ -z "$sanitize" && $# -eq 0 ]]; then
+  cmake -S . -B build-address-server -DCMAKE_BUILD_TYPE=RelWithDebInfo -DGRAFT_WERROR=ON -DGRAFT_SANITIZE=address \
+    -DGRAFT_TEST_WORKER="$PWD/build/bin/graft-worker" >/dev/null
+  cmake --build build-address-server -j2 --target graftd server_test
+  (cd build-address-server &&
+    ctest --output-on-failure --timeout 1500 \
+      -R '^(JobState|SqliteJobStore|Service|LauncherTest|LauncherProcessRunner|RecoveryTest|Fault|Tokens|Artifacts|Limits|Watch)\.')
 fi

@@ -116,7 +116,7 @@ class Cluster {
   // A `graft-worker serve` process with the cluster's address, worker token and TLS files, plus
   // `extra_flags`; its output goes to DIR/NAME.log.
   std::unique_ptr<ScopedProcess> StartWorker(const std::string& name, const std::vector<std::string>& extra_flags = {}) {
-    std::vector<std::string> argv = {BinaryDir() + "/bin/graft-worker", "serve", "--server",
+    std::vector<std::string> argv = {WorkerBinary(), "serve", "--server",
                                      "127.0.0.1:" + std::to_string(port_), "--token-file", dir_.path() + "/worker.token",
                                      "--work-dir", dir_.path() + "/" + name};
     const std::vector<std::string> tls = TlsFlags();

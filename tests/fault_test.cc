@@ -46,6 +46,7 @@ using ::graft::testing::ScopedProcess;
 using ::graft::testing::ScopedTempDir;
 using ::graft::testing::SourceDir;
 using ::graft::testing::WaitFor;
+using ::graft::testing::WorkerBinary;
 using ::graft::testing::WriteFile;
 
 // ---------------------------------------------------------------------------------------------
@@ -432,7 +433,7 @@ TEST(Fault, AWorkerResendsEveryPointAcrossACoordinatorRestart) {
   EXPECT_EQ(job.attempt(), 1);
   // The same spec trained once, locally.
   WriteFile(c.dir() + "/spec.yaml", job.spec_yaml());
-  auto r = RunCommand(BinaryDir() + "/bin/graft-worker run " + c.dir() + "/spec.yaml --out " + c.dir() + "/local");
+  auto r = RunCommand(WorkerBinary() + " run " + c.dir() + "/spec.yaml --out " + c.dir() + "/local");
   ASSERT_EQ(r.exit_code, 0) << r.output;
   std::istringstream local(ReadFile(c.dir() + "/local/metrics.jsonl"));
   std::vector<json> expected;
@@ -586,7 +587,7 @@ TEST(Fault, AWorkerWhoseWorkDirFillsHandsItsJobBack) {
   const std::string id = c.Submit(kAlice, "parcel-routing",
                                   {"training.steps=300", "evaluation.every=50", "training.checkpoint_every=100",
                                    "evaluation.triples=256", "network.hidden=[256,256,256]"});
-  std::vector<std::string> argv = {BinaryDir() + "/bin/graft-worker", "serve", "--server", c.address(),
+  std::vector<std::string> argv = {WorkerBinary(), "serve", "--server", c.address(),
                                    "--token-file", c.dir() + "/worker.token", "--work-dir", small};
   ScopedProcess w1(argv, c.dir() + "/w1.log");
   EXPECT_EQ(w1.Wait(180000), 1) << ReadFile(w1.log_path());

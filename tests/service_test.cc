@@ -590,7 +590,7 @@ TEST(Service, WorkerKilledMidJobResumesFromItsCheckpoint) {
   EXPECT_GT(std::stoll(w2_log.substr(at + 19)), 0);
   // The same spec trained in one go, locally.
   WriteFile(c.dir() + "/spec.yaml", job.spec_yaml());
-  auto r = ::graft::testing::RunCommand(BinaryDir() + "/bin/graft-worker run " + c.dir() + "/spec.yaml --out " +
+  auto r = ::graft::testing::RunCommand(::graft::testing::WorkerBinary() + " run " + c.dir() + "/spec.yaml --out " +
                                         c.dir() + "/local");
   ASSERT_EQ(r.exit_code, 0) << r.output;
   std::istringstream local(ReadFile(c.dir() + "/local/metrics.jsonl"));

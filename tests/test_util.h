@@ -87,6 +87,8 @@ std::string ReadFile(const std::string& path);
 inline const char* SystemPython() { return GRAFT_SYSTEM_PYTHON; }
 inline std::string SourceDir() { return GRAFT_SOURCE_DIR; }
 inline std::string BinaryDir() { return GRAFT_BINARY_DIR; }
+// The graft-worker program the tests start (this build's unless CMake's GRAFT_TEST_WORKER says).
+inline std::string WorkerBinary() { return GRAFT_WORKER_BINARY; }
 
 }  // namespace graft::testing
 
