@@ -6,13 +6,7 @@ namespace graft::net {
 
 MlpImpl::MlpImpl(const MlpOptions& options) : options_(options) {
   const int total = std::accumulate(options.input_sizes.begin(), options.input_sizes.end(), 0);
-  std::vector<int64_t> offsets;
-  int64_t at = 0;
-  for (int size : options.input_sizes) {
-    offsets.push_back(at);
-    at += size;
-  }
-  offsets_ = register_buffer("offsets", torch::tensor(offsets, torch::kInt64));
+  offsets_ = register_buffer("offsets", FirstRows(options.input_sizes));
   embed_ = register_parameter("embed", torch::randn({total, options.embedding_dim}),
                               /*requires_grad=*/!options.fixed_embedding);
   int in = static_cast<int>(options.input_sizes.size()) * options.embedding_dim;

@@ -11,6 +11,16 @@ torch::Tensor Activate(ActivationKind kind, const torch::Tensor& x) {
   return x;
 }
 
+torch::Tensor FirstRows(const std::vector<int>& input_sizes) {
+  std::vector<int64_t> first;
+  int64_t at = 0;
+  for (int size : input_sizes) {
+    first.push_back(at);
+    at += size;
+  }
+  return torch::tensor(first, torch::kInt64);
+}
+
 std::vector<torch::Tensor> SiteNetworkImpl::Hidden(const torch::Tensor& embedded, int upto) {
   std::vector<torch::Tensor> acts;
   acts.reserve(upto + 1);

@@ -22,6 +22,10 @@ enum class ActivationKind { kRelu, kGelu, kTanh };
 // relu, exact (erf) gelu, or tanh.
 torch::Tensor Activate(ActivationKind kind, const torch::Tensor& x);
 
+// Each input's first row [num_inputs] (int64) in one embedding table holding every input's rows
+// stacked in input order (input i has input_sizes[i] rows).
+torch::Tensor FirstRows(const std::vector<int>& input_sizes);
+
 // Which units of which layers an intervention overwrites, per example of a batch.
 struct InterventionMasks {
   int lowest_layer = -1;                 // -1: nothing is intervened

@@ -10,13 +10,7 @@ namespace F = torch::nn::functional;
 TransformerImpl::TransformerImpl(const TransformerOptions& options) : options_(options) {
   const int w = options.width;
   const int total = std::accumulate(options.input_sizes.begin(), options.input_sizes.end(), 0);
-  std::vector<int64_t> offsets;
-  int64_t at = 0;
-  for (int size : options.input_sizes) {
-    offsets.push_back(at);
-    at += size;
-  }
-  offsets_ = register_buffer("offsets", torch::tensor(offsets, torch::kInt64));
+  offsets_ = register_buffer("offsets", FirstRows(options.input_sizes));
   // Unit-variance token vectors: the first LayerNorm rescales them anyway, and the residual
   // stream starts at the scale its blocks' outputs have.
   embed_ = register_parameter("embed", torch::randn({total, w}));
