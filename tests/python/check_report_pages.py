@@ -45,6 +45,8 @@ import io
 import json
 import math
 import os
+import re
+import selectors
 import shutil
 import socket
 import struct
@@ -63,6 +65,9 @@ except ImportError as e:  # a missing module is a failure, never a skip
     sys.exit(2)
 
 BROWSER_START_S = 30      # bounds on waiting, never assertions about speed
+# Elements a self-contained page must not hold: each would load, run or embed something that
+# is not written in the page itself.
+FETCHING_ELEMENTS = ("script", "link", "img", "iframe", "object", "embed", "audio", "video", "source")
 PAGE_LOAD_S = 30
 failures = []
 
@@ -221,6 +226,7 @@ class Browser:
         shutil.rmtree(self.profile, ignore_errors=True)
         os.makedirs(self.profile)
         self.log = open(os.path.join(work, "chromium.log"), "w")
+        self.log_lock = threading.Lock()  # the stderr drain writes to the log until close()
         self.proc = subprocess.Popen(
             [chromium, "--headless", "--no-sandbox", "--disable-gpu", "--remote-debugging-port=0",
              "--remote-allow-origins=*", f"--user-data-dir={self.profile}", "--no-first-run",
@@ -232,17 +238,8 @@ class Browser:
              "DeviceBoundSessionCredentials,EnableBoundSessionCredentials",
              "--password-store=basic", "--metrics-recording-only",
              f"--proxy-server=http://127.0.0.1:{proxy.port}", "--proxy-bypass-list=<-loopback>",
-             "about:blank"], stdout=self.log, stderr=self.log, stdin=subprocess.DEVNULL)
-        port_file = os.path.join(self.profile, "DevToolsActivePort")
-        deadline = time.monotonic() + BROWSER_START_S
-        port = None
-        while time.monotonic() < deadline and self.proc.poll() is None:
-            if os.path.exists(port_file):
-                lines = open(port_file).read().split("\n")
-                if len(lines) >= 2 and lines[0].isdigit():
-                    port = int(lines[0])
-                    break
-            time.sleep(0.05)
+             "about:blank"], stdout=self.log, stderr=subprocess.PIPE, stdin=subprocess.DEVNULL)
+        port = self._devtools_port(time.monotonic() + BROWSER_START_S)
         if port is None:
             self.close()
             raise RuntimeError(f"chromium did not start (see {self.log.name})")
@@ -304,6 +301,36 @@ class Browser:
                 problems.append("loading failed: " + p.get("errorText", ""))
         return url, requests, problems, dom, base64.b64decode(shot["data"])
 
+    def _devtools_port(self, deadline):
+        """Chromium's DevTools port, from the line it writes to stderr once it listens ("DevTools
+        listening on ws://HOST:PORT/..."): waits on the pipe, not on time. None if it exits or the
+        deadline passes first. The rest of stderr keeps going to the log."""
+        fd = self.proc.stderr.fileno()
+        seen = b""
+        port = None
+        with selectors.DefaultSelector() as sel:
+            sel.register(fd, selectors.EVENT_READ)
+            while port is None and (left := deadline - time.monotonic()) > 0 and sel.select(left):
+                chunk = os.read(fd, 4096)
+                if not chunk:  # chromium closed stderr: it has exited
+                    break
+                self.log.write(chunk.decode(errors="replace"))
+                seen += chunk
+                found = re.search(rb"DevTools listening on ws://[^/\s]+:(\d+)/", seen)
+                port = int(found.group(1)) if found else None
+        self.log.flush()
+
+        def drain():
+            for chunk in iter(lambda: os.read(fd, 4096), b""):
+                with self.log_lock:
+                    if self.log.closed:
+                        return
+                    self.log.write(chunk.decode(errors="replace"))
+                    self.log.flush()
+
+        threading.Thread(target=drain, daemon=True).start()
+        return port
+
     def close(self):
         if self.proc.poll() is None:
             self.proc.terminate()
@@ -312,7 +339,8 @@ class Browser:
             except subprocess.TimeoutExpired:
                 self.proc.kill()
                 self.proc.wait()
-        self.log.close()
+        with self.log_lock:
+            self.log.close()
 
 
 # --- The DOM ---------------------------------------------------------------------------------------
@@ -411,7 +439,7 @@ def check_self_contained(name, dom, page_path, url, requests, proxy_seen, proble
                   f"{host}); it went nowhere: {line}")
     for p in problems:
         fail(f"{name}: {p}")
-    for tag in ("script", "link", "img", "iframe", "object", "embed", "audio", "video", "source"):
+    for tag in FETCHING_ELEMENTS:
         if dom.find(tag):
             fail(f"{name}: holds a <{tag}> element")
     if "url(" in dom.style or "@import" in dom.style:
