@@ -22,8 +22,8 @@ using ::graft::testing::RunCommand;
 using ::graft::testing::ScopedTempDir;
 using ::graft::testing::SourceDir;
 using ::graft::testing::SystemPython;
+using ::graft::testing::WorkerBinary;
 
-std::string Worker() { return BinaryDir() + "/bin/graft-worker"; }
 std::string ParcelConfig() { return SourceDir() + "/configs/parcel-routing.yaml"; }
 std::string Script(const std::string& name) {
   return std::string(SystemPython()) + " " + SourceDir() + "/tests/python/" + name;
@@ -40,9 +40,9 @@ class AnalysisTest : public ::testing::Test {
     dir_ = new ScopedTempDir();
     aligned_ = dir_->path() + "/aligned";
     moved_ = dir_->path() + "/moved";
-    auto a = RunCommand(Worker() + " run " + ParcelConfig() + " --out " + aligned_);
+    auto a = RunCommand(WorkerBinary() + " run " + ParcelConfig() + " --out " + aligned_);
     ASSERT_EQ(a.exit_code, 0) << a.output;
-    auto b = RunCommand(Worker() + " run " + ParcelConfig() + " --out " + moved_ + kMoved);
+    auto b = RunCommand(WorkerBinary() + " run " + ParcelConfig() + " --out " + moved_ + kMoved);
     ASSERT_EQ(b.exit_code, 0) << b.output;
   }
   static void TearDownTestSuite() {
@@ -96,7 +96,7 @@ TEST(Rotation, IsOrthogonalAndEqualsScipyExpmOfItsSkewMatrix) {
 // `evaluate` on the run's own weights.pt gives the run's final figures exactly, controls included.
 TEST_F(AnalysisTest, EvaluateReproducesTheTrainingRunsFinalMetrics) {
   ScopedTempDir out;
-  auto r = RunCommand(Worker() + " evaluate " + ParcelConfig() + " --weights " + aligned_ + "/weights.pt --out " +
+  auto r = RunCommand(WorkerBinary() + " evaluate " + ParcelConfig() + " --weights " + aligned_ + "/weights.pt --out " +
                       out.path());
   ASSERT_EQ(r.exit_code, 0) << r.output;
   json run = Json(aligned_ + "/result.json"), ev = Json(out.path() + "/evaluation.json");
@@ -168,7 +168,7 @@ TEST_F(AnalysisTest, RunResultCarriesTheControls) {
 // A standard-training run has failing triples: the file then holds exactly 200 (the cap).
 TEST(Controls, FailuresAreCappedAt200AndNamedWithSymbols) {
   ScopedTempDir dir;
-  auto r = RunCommand(Worker() + " run " + ParcelConfig() + " --out " + dir.path() +
+  auto r = RunCommand(WorkerBinary() + " run " + ParcelConfig() + " --out " + dir.path() +
                       " --set training.steps=200 --set training.loss_weights.interchange=0");
   ASSERT_EQ(r.exit_code, 0) << r.output;
   json res = Json(dir.path() + "/result.json");
@@ -191,7 +191,7 @@ TEST(Controls, FailuresAreCappedAt200AndNamedWithSymbols) {
 // three layers in blocks of 16.
 TEST_F(AnalysisTest, ScanFindsTheSitesIitTrainedAt) {
   ScopedTempDir out;
-  auto r = RunCommand(Worker() + " scan " + ParcelConfig() + " --weights " + moved_ + "/weights.pt --out " +
+  auto r = RunCommand(WorkerBinary() + " scan " + ParcelConfig() + " --weights " + moved_ + "/weights.pt --out " +
                       out.path() + kMoved + " --set scan.block=16 --set scan.random_subsets=2");
   ASSERT_EQ(r.exit_code, 0) << r.output;
   json scan = Json(out.path() + "/scan.json");
@@ -230,12 +230,12 @@ TEST_F(AnalysisTest, ScanFindsTheSitesIitTrainedAt) {
 TEST_F(AnalysisTest, DasFindsTheAlignmentWhileTheUntrainedControlDoesNot) {
   ScopedTempDir out;
   const std::string moved_weights = moved_ + "/weights.pt";
-  auto guess = RunCommand(Worker() + " evaluate " + ParcelConfig() + " --weights " + moved_weights + " --out " +
+  auto guess = RunCommand(WorkerBinary() + " evaluate " + ParcelConfig() + " --weights " + moved_weights + " --out " +
                           out.path() + "/guess --set alignment.local.layer=2 --set alignment.careful.layer=2");
   ASSERT_EQ(guess.exit_code, 0) << guess.output;
   EXPECT_LE(Json(out.path() + "/guess/evaluation.json")["iia_changed_held_out"]["value"].get<double>(), 0.5);
 
-  auto r = RunCommand(Worker() + " das " + ParcelConfig() + " --weights " + moved_weights + " --out " + out.path() +
+  auto r = RunCommand(WorkerBinary() + " das " + ParcelConfig() + " --weights " + moved_weights + " --out " + out.path() +
                       kMoved + " --set das.steps=300");
   ASSERT_EQ(r.exit_code, 0) << r.output;
   json das = Json(out.path() + "/das.json");
@@ -258,10 +258,10 @@ TEST_F(AnalysisTest, PythonSavedDictEvaluatesLikeTheGraftNetwork) {
   auto py = RunCommand(Script("resave_weights.py") + " " + aligned_ + "/weights.pt " + out.path() + "/py.pt");
   ASSERT_EQ(py.exit_code, 0) << py.output;
   ASSERT_NE(py.output.find("zip format"), std::string::npos) << py.output;
-  auto a = RunCommand(Worker() + " evaluate " + ParcelConfig() + " --weights " + out.path() + "/py.pt --out " +
+  auto a = RunCommand(WorkerBinary() + " evaluate " + ParcelConfig() + " --weights " + out.path() + "/py.pt --out " +
                       out.path() + "/py");
   ASSERT_EQ(a.exit_code, 0) << a.output;
-  auto b = RunCommand(Worker() + " evaluate " + ParcelConfig() + " --weights " + aligned_ + "/weights.pt --out " +
+  auto b = RunCommand(WorkerBinary() + " evaluate " + ParcelConfig() + " --weights " + aligned_ + "/weights.pt --out " +
                       out.path() + "/graft");
   ASSERT_EQ(b.exit_code, 0) << b.output;
   json ja = Json(out.path() + "/py/evaluation.json"), jb = Json(out.path() + "/graft/evaluation.json");
@@ -274,7 +274,7 @@ TEST_F(AnalysisTest, WeightsThatDoNotFitAreRefusedNamingTensorsAndShapes) {
   ScopedTempDir out;
   auto py = RunCommand(Script("resave_weights.py") + " " + aligned_ + "/weights.pt " + out.path() + "/bad.pt --break");
   ASSERT_EQ(py.exit_code, 0) << py.output;
-  auto r = RunCommand(Worker() + " evaluate " + ParcelConfig() + " --weights " + out.path() + "/bad.pt --out " +
+  auto r = RunCommand(WorkerBinary() + " evaluate " + ParcelConfig() + " --weights " + out.path() + "/bad.pt --out " +
                       out.path() + "/e");
   EXPECT_EQ(r.exit_code, 2) << r.output;
   EXPECT_NE(r.output.find("'hidden.0.weight' has shape [64, 31] but the config needs [64, 32]"), std::string::npos)
@@ -282,13 +282,13 @@ TEST_F(AnalysisTest, WeightsThatDoNotFitAreRefusedNamingTensorsAndShapes) {
   EXPECT_NE(r.output.find("missing: out.bias"), std::string::npos) << r.output;
   EXPECT_NE(r.output.find("not part of this config's network: decoder.weight"), std::string::npos) << r.output;
   // A config whose network differs is refused the same way; a missing file is exit 1 with its name.
-  auto w = RunCommand(Worker() + " evaluate " + ParcelConfig() + " --weights " + aligned_ +
+  auto w = RunCommand(WorkerBinary() + " evaluate " + ParcelConfig() + " --weights " + aligned_ +
                       "/weights.pt --set network.hidden=[64,64] --set alignment.local.layer=0 "
                       "--set alignment.careful.layer=0 --out " + out.path() + "/w");
   EXPECT_EQ(w.exit_code, 2) << w.output;
   EXPECT_NE(w.output.find("not part of this config's network: hidden.2.bias, hidden.2.weight"), std::string::npos)
       << w.output;
-  auto m = RunCommand(Worker() + " evaluate " + ParcelConfig() + " --weights " + out.path() + "/none.pt --out " +
+  auto m = RunCommand(WorkerBinary() + " evaluate " + ParcelConfig() + " --weights " + out.path() + "/none.pt --out " +
                       out.path() + "/m");
   EXPECT_EQ(m.exit_code, 1) << m.output;
   EXPECT_NE(m.output.find("none.pt: cannot open the weights file"), std::string::npos) << m.output;
@@ -305,7 +305,7 @@ namespace {
 // reports on the run's own held-out triples, and the files hold what the blocks asked for.
 TEST(RunWithAnalysisBlocks, ScanAndDasRunAfterTraining) {
   ScopedTempDir dir;
-  auto r = RunCommand(Worker() + " run " + ParcelConfig() + " --out " + dir.path() +
+  auto r = RunCommand(WorkerBinary() + " run " + ParcelConfig() + " --out " + dir.path() +
                       " --set training.steps=300 --set evaluation.triples=512 --set 'scan={layers: [1], pairs: 256}'"
                       " --set 'das={steps: 50}'");
   ASSERT_EQ(r.exit_code, 0) << r.output;

@@ -25,8 +25,8 @@ using ::graft::testing::RunCommand;
 using ::graft::testing::ScopedTempDir;
 using ::graft::testing::SourceDir;
 using ::graft::testing::SystemPython;
+using ::graft::testing::WorkerBinary;
 
-std::string Worker() { return BinaryDir() + "/bin/graft-worker"; }
 std::string Config(const std::string& name) { return SourceDir() + "/configs/" + name + ".yaml"; }
 
 net::Mlp SmallNet() {
@@ -192,16 +192,16 @@ const char kSmallRun[] =
 TEST(Trainer, ResumeAfterInterruptionReproducesTheUninterruptedRun) {
   ScopedTempDir dir;
   const std::string a = dir.path() + "/a", b = dir.path() + "/b", c = dir.path() + "/c";
-  auto ra = RunCommand(Worker() + " run " + Config("parcel-routing") + " --out " + a + kSmallRun);
+  auto ra = RunCommand(WorkerBinary() + " run " + Config("parcel-routing") + " --out " + a + kSmallRun);
   ASSERT_EQ(ra.exit_code, 0) << ra.output;
   // Interrupted after step 70 (between checkpoints and evaluations), then resumed.
-  auto rb = RunCommand(Worker() + " run " + Config("parcel-routing") + " --out " + b + kSmallRun +
+  auto rb = RunCommand(WorkerBinary() + " run " + Config("parcel-routing") + " --out " + b + kSmallRun +
                        " --stop-after-step 70");
   ASSERT_EQ(rb.exit_code, 8) << rb.output;  // stopped early with a checkpoint (README "Exit codes")
   EXPECT_NE(rb.output.find("stopped after step 70"), std::string::npos) << rb.output;
   const std::string interrupted = ReadFile(b + "/metrics.jsonl");  // steps 0 and 40
   std::filesystem::copy_file(b + "/checkpoint.pt", b + "/checkpoint.pt.at70");
-  auto rb2 = RunCommand(Worker() + " run " + Config("parcel-routing") + " --out " + b + kSmallRun +
+  auto rb2 = RunCommand(WorkerBinary() + " run " + Config("parcel-routing") + " --out " + b + kSmallRun +
                         " --resume " + b);
   ASSERT_EQ(rb2.exit_code, 0) << rb2.output;
   // A real resume, not a silent retrain (runs are deterministic, so equal metrics alone cannot
@@ -222,12 +222,12 @@ TEST(Trainer, ResumeAfterInterruptionReproducesTheUninterruptedRun) {
   const std::string d = dir.path() + "/d";
   std::filesystem::create_directories(d);
   std::filesystem::copy_file(b + "/checkpoint.pt.at70", d + "/checkpoint.pt");
-  auto rd = RunCommand(Worker() + " run " + Config("parcel-routing") + " --out " + d + kSmallRun + " --resume " + d);
+  auto rd = RunCommand(WorkerBinary() + " run " + Config("parcel-routing") + " --out " + d + kSmallRun + " --resume " + d);
   ASSERT_EQ(rd.exit_code, 0) << rd.output;
   EXPECT_EQ(ReadFile(d + "/metrics.jsonl").substr(0, interrupted.size()), interrupted);
   EXPECT_EQ(MetricLines(d + "/metrics.jsonl"), MetricLines(b + "/metrics.jsonl"));
   // The same spec and seed again, uninterrupted.
-  auto rc = RunCommand(Worker() + " run " + Config("parcel-routing") + " --out " + c + kSmallRun);
+  auto rc = RunCommand(WorkerBinary() + " run " + Config("parcel-routing") + " --out " + c + kSmallRun);
   ASSERT_EQ(rc.exit_code, 0) << rc.output;
   const json fresh = json::parse(ReadFile(c + "/result.json"));
   EXPECT_EQ(fresh["resumed_from_step"], 0);
@@ -249,10 +249,10 @@ TEST(Trainer, ResumeAfterInterruptionReproducesTheUninterruptedRun) {
 TEST(Trainer, RefusesToResumeWithADifferentSpec) {
   ScopedTempDir dir;
   const std::string a = dir.path() + "/a";
-  auto r = RunCommand(Worker() + " run " + Config("parcel-routing") + " --out " + a + kSmallRun +
+  auto r = RunCommand(WorkerBinary() + " run " + Config("parcel-routing") + " --out " + a + kSmallRun +
                       " --stop-after-step 50");
   ASSERT_EQ(r.exit_code, 8) << r.output;
-  auto r2 = RunCommand(Worker() + " run " + Config("parcel-routing") + " --out " + a + kSmallRun +
+  auto r2 = RunCommand(WorkerBinary() + " run " + Config("parcel-routing") + " --out " + a + kSmallRun +
                        " --set training.optimizer.lr=0.01 --resume " + a);
   EXPECT_EQ(r2.exit_code, 2) << r2.output;
   EXPECT_NE(r2.output.find("belongs to a different spec"), std::string::npos) << r2.output;
@@ -260,7 +260,7 @@ TEST(Trainer, RefusesToResumeWithADifferentSpec) {
 
 TEST(Trainer, InvalidConfigExitsTwoWithTheLocation) {
   ScopedTempDir dir;
-  auto r = RunCommand(Worker() + " run " + Config("parcel-routing") + " --out " + dir.path() +
+  auto r = RunCommand(WorkerBinary() + " run " + Config("parcel-routing") + " --out " + dir.path() +
                       " --set training.sources=outside");
   EXPECT_EQ(r.exit_code, 2) << r.output;
   EXPECT_NE(r.output.find("--set #1:1:18: training.sources: expected one of in_batch | independent"),
@@ -270,7 +270,7 @@ TEST(Trainer, InvalidConfigExitsTwoWithTheLocation) {
 
 TEST(Trainer, RunDirectoryHasTheDocumentedFields) {
   ScopedTempDir dir;
-  auto r = RunCommand(Worker() + " run " + Config("parcel-routing") + " --out " + dir.path() + kSmallRun);
+  auto r = RunCommand(WorkerBinary() + " run " + Config("parcel-routing") + " --out " + dir.path() + kSmallRun);
   ASSERT_EQ(r.exit_code, 0) << r.output;
   json res = json::parse(ReadFile(dir.path() + "/result.json"));
   for (const char* key : {"step", "examples", "wall_s", "loss_task", "loss_interchange", "acc_train", "acc_held_out",
@@ -324,7 +324,7 @@ TEST(Trainer, RunDirectoryHasTheDocumentedFields) {
 // result.json's correct, changed and per-set counts and the unchanged floor.
 TEST(Trainer, NumpyRecomputesTheIntervenedLogitsFromWeights) {
   ScopedTempDir dir;
-  auto r = RunCommand(Worker() + " run " + Config("parcel-routing") + " --out " + dir.path() + kSmallRun +
+  auto r = RunCommand(WorkerBinary() + " run " + Config("parcel-routing") + " --out " + dir.path() + kSmallRun +
                       " --set evaluation.triples=64 --dump-logits " + dir.path() + "/logits.json");
   ASSERT_EQ(r.exit_code, 0) << r.output;
   auto py = RunCommand(std::string(SystemPython()) + " " + SourceDir() + "/tests/python/recompute_intervention.py " +
@@ -382,9 +382,9 @@ json Result(const std::string& dir) { return json::parse(ReadFile(dir + "/result
 // reference for the numbers themselves.
 TEST(Demo, ParcelRoutingIitBeatsStandardTrainingOnChangedCases) {
   ScopedTempDir dir;
-  auto iit = RunCommand(Worker() + " run " + Config("parcel-routing") + " --out " + dir.path() + "/iit");
+  auto iit = RunCommand(WorkerBinary() + " run " + Config("parcel-routing") + " --out " + dir.path() + "/iit");
   ASSERT_EQ(iit.exit_code, 0) << iit.output;
-  auto base = RunCommand(Worker() + " run " + Config("parcel-routing") + " --out " + dir.path() +
+  auto base = RunCommand(WorkerBinary() + " run " + Config("parcel-routing") + " --out " + dir.path() +
                          "/baseline --set training.loss_weights.interchange=0");
   ASSERT_EQ(base.exit_code, 0) << base.output;
   json a = Result(dir.path() + "/iit"), b = Result(dir.path() + "/baseline");
@@ -398,7 +398,7 @@ TEST(Demo, ParcelRoutingIitBeatsStandardTrainingOnChangedCases) {
 
 TEST(Demo, ChecksumDigitsReachesTheTargets) {
   ScopedTempDir dir;
-  auto r = RunCommand(Worker() + " run " + Config("checksum-digits") + " --out " + dir.path());
+  auto r = RunCommand(WorkerBinary() + " run " + Config("checksum-digits") + " --out " + dir.path());
   ASSERT_EQ(r.exit_code, 0) << r.output;
   json a = Result(dir.path());
   EXPECT_GE(a["acc_held_out"]["value"].get<double>(), 0.98);

@@ -17,8 +17,8 @@ using ::graft::testing::RunCommand;
 using ::graft::testing::ScopedTempDir;
 using ::graft::testing::SourceDir;
 using ::graft::testing::SystemPython;
+using ::graft::testing::WorkerBinary;
 
-std::string Worker() { return BinaryDir() + "/bin/graft-worker"; }
 std::string Script(const std::string& name) {
   return std::string(SystemPython()) + " " + SourceDir() + "/tests/python/" + name;
 }
@@ -68,7 +68,7 @@ class TransformerAnalysisTest : public ::testing::Test {
     config_ = dir_->path() + "/parcel-tokens.yaml";
     ::graft::testing::WriteFile(config_, kParcelTransformer);
     run_ = dir_->path() + "/run";
-    auto r = RunCommand(Worker() + " run " + config_ + " --out " + run_);
+    auto r = RunCommand(WorkerBinary() + " run " + config_ + " --out " + run_);
     ASSERT_EQ(r.exit_code, 0) << r.output;
   }
   static void TearDownTestSuite() {
@@ -85,7 +85,7 @@ std::string TransformerAnalysisTest::config_, TransformerAnalysisTest::run_;
 // trainer: its figures would differ from the run's.
 TEST_F(TransformerAnalysisTest, EvaluateReproducesTheRunAndDrawsControlsAtTheSamePositions) {
   ScopedTempDir out;
-  auto r = RunCommand(Worker() + " evaluate " + config_ + " --weights " + run_ + "/weights.pt --out " + out.path());
+  auto r = RunCommand(WorkerBinary() + " evaluate " + config_ + " --weights " + run_ + "/weights.pt --out " + out.path());
   ASSERT_EQ(r.exit_code, 0) << r.output;
   json run = Json(run_ + "/result.json"), ev = Json(out.path() + "/evaluation.json");
   for (const char* key : {"acc_held_out", "iia_held_out", "iia_changed_held_out", "iia_by_set",
@@ -104,7 +104,7 @@ TEST_F(TransformerAnalysisTest, EvaluateReproducesTheRunAndDrawsControlsAtTheSam
 // the wrong token: the best site of each variable must be the token and block IIT trained.
 TEST_F(TransformerAnalysisTest, ScanFindsTheTokenAndUnitsIitTrainedAt) {
   ScopedTempDir out;
-  auto r = RunCommand(Worker() + " scan " + config_ + " --weights " + run_ + "/weights.pt --out " + out.path() +
+  auto r = RunCommand(WorkerBinary() + " scan " + config_ + " --weights " + run_ + "/weights.pt --out " + out.path() +
                       " --set scan.block=8");
   ASSERT_EQ(r.exit_code, 0) << r.output;
   json scan = Json(out.path() + "/scan.json");
@@ -139,7 +139,7 @@ TEST_F(TransformerAnalysisTest, ScanFindsTheTokenAndUnitsIitTrainedAt) {
 // columns of the flattened stream.
 TEST_F(TransformerAnalysisTest, DasRotatesOneTokensResidualStream) {
   ScopedTempDir out;
-  auto r = RunCommand(Worker() + " das " + config_ + " --weights " + run_ + "/weights.pt --out " + out.path() +
+  auto r = RunCommand(WorkerBinary() + " das " + config_ + " --weights " + run_ + "/weights.pt --out " + out.path() +
                       "/dest --set das.steps=150");
   ASSERT_EQ(r.exit_code, 0) << r.output;
   json das = Json(out.path() + "/dest/das.json");
@@ -148,7 +148,7 @@ TEST_F(TransformerAnalysisTest, DasRotatesOneTokensResidualStream) {
   EXPECT_GE(das["network"]["iia_changed_held_out"]["value"].get<double>(), 0.9) << das["network"];
   EXPECT_LT(das["control_untrained_network"]["iia_changed_held_out"]["hi"].get<double>(),
             das["network"]["iia_changed_held_out"]["lo"].get<double>());
-  auto other = RunCommand(Worker() + " das " + config_ + " --weights " + run_ + "/weights.pt --out " + out.path() +
+  auto other = RunCommand(WorkerBinary() + " das " + config_ + " --weights " + run_ + "/weights.pt --out " + out.path() +
                           "/weight --set das.steps=150 --set das.position=weight");
   ASSERT_EQ(other.exit_code, 0) << other.output;
   EXPECT_LE(Json(out.path() + "/weight/das.json")["network"]["iia_changed_held_out"]["value"].get<double>(), 0.6);
@@ -161,7 +161,7 @@ TEST_F(TransformerAnalysisTest, PythonSavedDictEvaluatesLikeTheGraftNetwork) {
   ScopedTempDir out;
   auto py = RunCommand(Script("resave_weights.py") + " " + run_ + "/weights.pt " + out.path() + "/py.pt");
   ASSERT_EQ(py.exit_code, 0) << py.output;
-  auto a = RunCommand(Worker() + " evaluate " + config_ + " --weights " + out.path() + "/py.pt --out " + out.path() +
+  auto a = RunCommand(WorkerBinary() + " evaluate " + config_ + " --weights " + out.path() + "/py.pt --out " + out.path() +
                       "/py");
   ASSERT_EQ(a.exit_code, 0) << a.output;
   json ja = Json(out.path() + "/py/evaluation.json"), jb = Json(run_ + "/result.json");
@@ -171,7 +171,7 @@ TEST_F(TransformerAnalysisTest, PythonSavedDictEvaluatesLikeTheGraftNetwork) {
   auto cut = RunCommand(std::string(SystemPython()) + " -c \"import torch; d = torch.load('" + out.path() +
                         "/py.pt'); del d['block.1.attn.in_proj.bias']; torch.save(d, '" + out.path() + "/cut.pt')\"");
   ASSERT_EQ(cut.exit_code, 0) << cut.output;
-  auto b = RunCommand(Worker() + " evaluate " + config_ + " --weights " + out.path() + "/cut.pt --out " + out.path() +
+  auto b = RunCommand(WorkerBinary() + " evaluate " + config_ + " --weights " + out.path() + "/cut.pt --out " + out.path() +
                       "/cut");
   EXPECT_EQ(b.exit_code, 2) << b.output;
   EXPECT_NE(b.output.find("missing: block.1.attn.in_proj.bias"), std::string::npos) << b.output;

@@ -23,8 +23,8 @@ using ::graft::testing::RunCommand;
 using ::graft::testing::ScopedTempDir;
 using ::graft::testing::SourceDir;
 using ::graft::testing::SystemPython;
+using ::graft::testing::WorkerBinary;
 
-std::string Worker() { return BinaryDir() + "/bin/graft-worker"; }
 
 constexpr int kWidth = 12, kTokens = 4;  // three inputs and the readout
 
@@ -180,7 +180,7 @@ std::string WriteLedger(const ScopedTempDir& dir) {
 TEST(Transformer, NumpyRecomputesTheIntervenedLogitsFromWeights) {
   ScopedTempDir dir;
   const std::string config = WriteLedger(dir);
-  auto r = RunCommand(Worker() + " run " + config + " --out " + dir.path() + "/run --dump-logits " + dir.path() +
+  auto r = RunCommand(WorkerBinary() + " run " + config + " --out " + dir.path() + "/run --dump-logits " + dir.path() +
                       "/run/logits.json");
   ASSERT_EQ(r.exit_code, 0) << r.output;
   auto py = RunCommand(std::string(SystemPython()) + " " + SourceDir() + "/tests/python/recompute_intervention.py " +
@@ -205,11 +205,11 @@ TEST(Transformer, ResumeAfterInterruptionReproducesTheUninterruptedRun) {
   ScopedTempDir dir;
   const std::string config = WriteLedger(dir);
   const std::string a = dir.path() + "/a", b = dir.path() + "/b";
-  auto ra = RunCommand(Worker() + " run " + config + " --out " + a);
+  auto ra = RunCommand(WorkerBinary() + " run " + config + " --out " + a);
   ASSERT_EQ(ra.exit_code, 0) << ra.output;
-  auto rb = RunCommand(Worker() + " run " + config + " --out " + b + " --stop-after-step 30");
+  auto rb = RunCommand(WorkerBinary() + " run " + config + " --out " + b + " --stop-after-step 30");
   ASSERT_EQ(rb.exit_code, 8) << rb.output;
-  auto rb2 = RunCommand(Worker() + " run " + config + " --out " + b + " --resume " + b);
+  auto rb2 = RunCommand(WorkerBinary() + " run " + config + " --out " + b + " --resume " + b);
   ASSERT_EQ(rb2.exit_code, 0) << rb2.output;
   const json resumed = json::parse(ReadFile(b + "/result.json"));
   EXPECT_EQ(resumed["resumed_from_step"], 30);
