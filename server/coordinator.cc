@@ -681,8 +681,9 @@ void Coordinator::ServeWaiters(Deferred& deferred) {
   }
 }
 
-void Coordinator::Lease(const Principal& who, const v1::LeaseJobRequest& request, LeaseDone done) {
+uint64_t Coordinator::Lease(const Principal& who, const v1::LeaseJobRequest& request, LeaseDone done) {
   Deferred deferred;
+  uint64_t number = 0;
   {
     std::lock_guard<std::mutex> lock(mu_);
     if (stopping_) {
@@ -705,13 +706,29 @@ void Coordinator::Lease(const Principal& who, const v1::LeaseJobRequest& request
         seen_ms_.erase(request.worker_id());
         (void)store_->PutWorker(**worker);
         const int64_t wait = std::clamp<int64_t>(request.wait_ms(), 0, 60000);
-        waiters_.push_back(Waiter{request.worker_id(), clock_->NowMs() + wait, std::move(done)});
+        number = ++last_waiter_;
+        waiters_.push_back(Waiter{number, request.worker_id(), clock_->NowMs() + wait, std::move(done)});
         ServeWaiters(deferred);
       }
     }
   }
   for (auto& f : deferred) f();
   wake_.notify_all();
+  return number;
+}
+
+void Coordinator::DropWaiter(uint64_t waiter) {
+  if (waiter == 0) return;
+  LeaseDone done;
+  {
+    std::lock_guard<std::mutex> lock(mu_);
+    auto it = std::find_if(waiters_.begin(), waiters_.end(), [&](const Waiter& w) { return w.number == waiter; });
+    if (it == waiters_.end()) return;
+    done = std::move(it->done);
+    log_->info("long poll of {} dropped: its caller went away", it->worker_id);
+    waiters_.erase(it);
+  }
+  done(absl::CancelledError("the long poll's caller went away"), v1::LeaseJobResponse());
 }
 
 absl::StatusOr<JobRecord> Coordinator::LoadLeased(const std::string& job_id, const std::string& worker_id,

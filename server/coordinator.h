@@ -143,9 +143,14 @@ class Coordinator {
   // or they are FailedPrecondition.
   absl::StatusOr<v1::RegisterWorkerResponse> Register(const Principal& who, const v1::RegisterWorkerRequest& request);
   // Completes `done` (exactly once, from any thread) within request.wait_ms, with a job or
-  // has_job = false.
+  // has_job = false. Returns the long poll's number for DropWaiter (0 when `done` was completed
+  // at once).
   using LeaseDone = std::function<void(absl::Status status, const v1::LeaseJobResponse& response)>;
-  void Lease(const Principal& who, const v1::LeaseJobRequest& request, LeaseDone done);
+  uint64_t Lease(const Principal& who, const v1::LeaseJobRequest& request, LeaseDone done);
+  // The caller of long poll `waiter` has gone (its call was cancelled, or its process died): it is
+  // no longer offered a job, and its `done` is completed with Cancelled. Nothing if it was
+  // already answered.
+  void DropWaiter(uint64_t waiter);
   absl::StatusOr<v1::ReportResponse> Report(const Principal& who, const v1::ReportRequest& request);
   // The worker leaves: shown as gone from now on. NotFound for an unknown worker.
   absl::Status Deregister(const Principal& who, const v1::DeregisterWorkerRequest& request);
@@ -156,6 +161,7 @@ class Coordinator {
 
  private:
   struct Waiter {
+    uint64_t number;
     std::string worker_id;
     int64_t deadline_ms;
     LeaseDone done;
@@ -205,6 +211,7 @@ class Coordinator {
 
   std::mutex mu_;
   std::vector<Waiter> waiters_;                  // guarded by mu_
+  uint64_t last_waiter_ = 0;                     // guarded by mu_
   std::map<int64_t, Watcher> watchers_;          // guarded by mu_
   int64_t next_watch_id_ = 1;                    // guarded by mu_
   std::map<int64_t, int64_t> acknowledged_;      // job -> highest stored step this attempt; guarded by mu_

@@ -1,5 +1,6 @@
 #include "server/services.h"
 
+#include <atomic>
 #include <deque>
 #include <fstream>
 #include <map>
@@ -490,6 +491,36 @@ class JobsImpl : public v1::Jobs::CallbackService {
   int64_t listener_ = 0;
 };
 
+// A worker's long poll for a job. Answered later, from whichever thread finds a job or the
+// deadline; no thread waits. It counts as a call in flight until it is answered. When its caller
+// goes away (the call is cancelled, or the worker's process died and its connection closed), the
+// coordinator drops its waiter at once: it is offered no job and gives its unit back.
+class LongPoll : public grpc::ServerUnaryReactor {
+ public:
+  explicit LongPoll(Coordinator* c) : c_(c) {}
+
+  void Start(Caller caller, const v1::LeaseJobRequest& request, v1::LeaseJobResponse* response) {
+    const uint64_t waiter = c_->Lease(caller.who, request,
+                                      [this, response, hold = caller.hold](absl::Status status,
+                                                                           const v1::LeaseJobResponse& reply) {
+                                        if (status.ok()) *response = reply;
+                                        Finish(ToGrpc(status));
+                                      });
+    waiter_.store(waiter);
+    if (cancelled_.load()) c_->DropWaiter(waiter);  // cancelled before the number was known
+  }
+  void OnCancel() override {
+    cancelled_.store(true);
+    c_->DropWaiter(waiter_.load());  // 0 (not yet known, or answered at once) is a no-op
+  }
+  void OnDone() override { delete this; }
+
+ private:
+  Coordinator* const c_;
+  std::atomic<uint64_t> waiter_{0};
+  std::atomic<bool> cancelled_{false};
+};
+
 class WorkersImpl : public v1::Workers::CallbackService {
  public:
   WorkersImpl(Coordinator* c, LiveTokens* t)
@@ -505,19 +536,11 @@ class WorkersImpl : public v1::Workers::CallbackService {
   }
   grpc::ServerUnaryReactor* LeaseJob(grpc::CallbackServerContext* ctx, const v1::LeaseJobRequest* req,
                                      v1::LeaseJobResponse* resp) override {
-    auto* reactor = ctx->DefaultReactor();
     auto caller = Admit(*t_, budget_, ctx, server::Service::kWorkers);
-    if (!caller.ok()) {
-      reactor->Finish(ToGrpc(caller.status()));
-      return reactor;
-    }
-    // Answered later, from whichever thread finds a job or the deadline; no thread waits. The
-    // long poll counts as a call in flight until it is answered.
-    c_->Lease(caller->who, *req, [reactor, resp, hold = caller->hold](absl::Status status, const v1::LeaseJobResponse& reply) {
-      if (status.ok()) *resp = reply;
-      reactor->Finish(ToGrpc(status));
-    });
-    return reactor;
+    if (!caller.ok()) return Reply(ctx, caller.status());
+    auto* poll = new LongPoll(c_);
+    poll->Start(std::move(*caller), *req, resp);
+    return poll;
   }
   grpc::ServerUnaryReactor* Report(grpc::CallbackServerContext* ctx, const v1::ReportRequest* req,
                                    v1::ReportResponse* resp) override {

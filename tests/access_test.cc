@@ -8,8 +8,10 @@
 
 #include <atomic>
 #include <chrono>
+#include <condition_variable>
 #include <filesystem>
 #include <memory>
+#include <mutex>
 #include <string>
 #include <thread>
 #include <tuple>
@@ -451,6 +453,8 @@ TEST(Limits, WatchesPerUserAndCallsInFlightPerToken) {
   LimitedCluster lc("max_watches_per_user: 2\nmax_requests_in_flight_per_token: 3\n");
   Cluster& c = *lc.cluster;
   // Three long polls of node1 hold its three calls; a fourth call is refused until they end.
+  // The polls ask to wait 60 s, longer than any wait below: their units come back only because
+  // cancelling a poll makes graftd drop its waiter at once (as when a worker's process dies).
   v1::RegisterWorkerRequest reg;
   reg.set_host("w");
   v1::RegisterWorkerResponse me;
@@ -459,34 +463,65 @@ TEST(Limits, WatchesPerUserAndCallsInFlightPerToken) {
   struct Poll {
     grpc::ClientContext ctx;
     v1::LeaseJobResponse resp;
-    std::atomic<bool> done{false};
+    std::mutex mu;
+    std::condition_variable cv;
+    bool done = false;  // guarded by mu
+    void Wait() {
+      std::unique_lock<std::mutex> lock(mu);
+      cv.wait(lock, [&] { return done; });
+    }
+    bool Done() {
+      std::lock_guard<std::mutex> lock(mu);
+      return done;
+    }
   };
-  std::vector<std::unique_ptr<Poll>> polls;
   v1::LeaseJobRequest lr;
   lr.set_worker_id(worker_id);
-  lr.set_wait_ms(4000);
-  for (int i = 0; i < 3; ++i) {
-    polls.push_back(std::make_unique<Poll>());
-    Poll* p = polls.back().get();
+  lr.set_wait_ms(60000);
+  auto start_poll = [&] {
+    auto p = std::make_unique<Poll>();
+    Poll* raw = p.get();
     p->ctx.AddMetadata("authorization", std::string("Bearer ") + kWorker);
-    p->ctx.set_deadline(std::chrono::system_clock::now() + std::chrono::seconds(30));
-    c.workers().async()->LeaseJob(&p->ctx, &lr, &p->resp, [p](grpc::Status) { p->done = true; });
-  }
+    p->ctx.set_deadline(std::chrono::system_clock::now() + std::chrono::seconds(90));
+    c.workers().async()->LeaseJob(&p->ctx, &lr, &p->resp, [raw](grpc::Status) {
+      std::lock_guard<std::mutex> lock(raw->mu);
+      raw->done = true;
+      raw->cv.notify_all();
+    });
+    return p;
+  };
+  std::vector<std::unique_ptr<Poll>> polls;
+  for (int i = 0; i < 3; ++i) polls.push_back(start_poll());
   auto register_code = [&](const char* token, std::string* message) {
     v1::RegisterWorkerResponse o;
     grpc::Status s = c.workers().RegisterWorker(c.Ctx(token).get(), reg, &o);
     if (message) *message = s.error_message();
     return s.error_code();
   };
+  // A probe that reaches graftd before a poll takes a unit, and that poll is refused: it is sent
+  // again, until all three polls are in and the probe is the one refused.
   std::string message;
-  ASSERT_TRUE(WaitFor([&] { return register_code(kWorker, &message) == grpc::StatusCode::RESOURCE_EXHAUSTED; }, 20000))
+  ASSERT_TRUE(WaitFor(
+      [&] {
+        for (auto& p : polls) {
+          if (p->Done()) p = start_poll();
+        }
+        return register_code(kWorker, &message) == grpc::StatusCode::RESOURCE_EXHAUSTED;
+      },
+      20000))
       << message;
   EXPECT_NE(message.find("'node1' has 3 requests in flight; graftd allows at most max_requests_in_flight_per_token = 3"),
             std::string::npos)
       << message;
   EXPECT_EQ(register_code(testing::kWorker2, nullptr), grpc::StatusCode::OK);  // another token
-  ASSERT_TRUE(WaitFor([&] { return polls[0]->done && polls[1]->done && polls[2]->done; }, 30000));
-  EXPECT_EQ(register_code(kWorker, nullptr), grpc::StatusCode::OK);  // given back
+  for (auto& p : polls) {
+    p->ctx.TryCancel();
+    p->Wait();
+  }
+  ASSERT_TRUE(WaitFor([&] { return register_code(kWorker, nullptr) == grpc::StatusCode::OK; }, 20000))
+      << "the cancelled long polls still hold node1's calls";
+  const std::string log = ReadFile(c.dir() + "/graftd.log");
+  EXPECT_NE(log.find("long poll of " + worker_id + " dropped: its caller went away"), std::string::npos) << log;
 
   // Watches: alice's job stays queued (no worker).
   const std::string id = c.Submit(kAlice, "parcel-routing", kSmall);
