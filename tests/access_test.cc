@@ -8,10 +8,9 @@
 
 #include <atomic>
 #include <chrono>
-#include <condition_variable>
 #include <filesystem>
+#include <future>
 #include <memory>
-#include <mutex>
 #include <string>
 #include <thread>
 #include <tuple>
@@ -463,17 +462,9 @@ TEST(Limits, WatchesPerUserAndCallsInFlightPerToken) {
   struct Poll {
     grpc::ClientContext ctx;
     v1::LeaseJobResponse resp;
-    std::mutex mu;
-    std::condition_variable cv;
-    bool done = false;  // guarded by mu
-    void Wait() {
-      std::unique_lock<std::mutex> lock(mu);
-      cv.wait(lock, [&] { return done; });
-    }
-    bool Done() {
-      std::lock_guard<std::mutex> lock(mu);
-      return done;
-    }
+    std::promise<void> answered;  // set by the call's callback
+    std::future<void> done = answered.get_future();
+    bool Done() const { return done.wait_for(std::chrono::seconds(0)) == std::future_status::ready; }
   };
   v1::LeaseJobRequest lr;
   lr.set_worker_id(worker_id);
@@ -483,11 +474,7 @@ TEST(Limits, WatchesPerUserAndCallsInFlightPerToken) {
     Poll* raw = p.get();
     p->ctx.AddMetadata("authorization", std::string("Bearer ") + kWorker);
     p->ctx.set_deadline(std::chrono::system_clock::now() + std::chrono::seconds(90));
-    c.workers().async()->LeaseJob(&p->ctx, &lr, &p->resp, [raw](grpc::Status) {
-      std::lock_guard<std::mutex> lock(raw->mu);
-      raw->done = true;
-      raw->cv.notify_all();
-    });
+    c.workers().async()->LeaseJob(&p->ctx, &lr, &p->resp, [raw](grpc::Status) { raw->answered.set_value(); });
     return p;
   };
   std::vector<std::unique_ptr<Poll>> polls;
@@ -516,7 +503,7 @@ TEST(Limits, WatchesPerUserAndCallsInFlightPerToken) {
   EXPECT_EQ(register_code(testing::kWorker2, nullptr), grpc::StatusCode::OK);  // another token
   for (auto& p : polls) {
     p->ctx.TryCancel();
-    p->Wait();
+    p->done.wait();
   }
   ASSERT_TRUE(WaitFor([&] { return register_code(kWorker, nullptr) == grpc::StatusCode::OK; }, 20000))
       << "the cancelled long polls still hold node1's calls";
